@@ -1,0 +1,18 @@
+"""Argument documentation shared by every tower optimizer (written once, reused)."""
+
+TOWER_ARGS = """        depth: number of levels above the base; 0 is a plain fixed-rate optimizer
+            (default: the measured :data:`stepsize_tower.defaults.DEFAULT_DEPTH`).
+        levels: the levels themselves, level 1 first: :class:`Level` objects or kind names
+            (``"adam"``, ``"sgd"``); the last level's ``lr`` is fixed (default: measured
+            defaults, :func:`stepsize_tower.defaults.default_levels`).
+        granularity: ``"group"`` learns one step size per parameter group, ``"tensor"``
+            one per parameter tensor (default: ``"group"``).
+        retreat: when the next gradient shows the loss rose along the last step, take it
+            back and redo it with the secant step size (default: True).
+        maximize: maximize the objective instead of minimizing it (default: False).
+
+    .. note::
+        Step sizes are learned in log space (``a = lr * exp(u)``), so they stay positive
+        without clamping, and ``lr`` is an outer factor: a learning-rate scheduler that
+        rewrites ``group["lr"]`` rescales the learned step size instead of replacing it.
+        :meth:`step_sizes` returns the values in use."""

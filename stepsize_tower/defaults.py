@@ -1,0 +1,31 @@
+"""The defaults a user gets by typing only ``lr``: chosen from measurements, not taste.
+
+The evidence is the sensitivity benchmark (``experiments/sensitivity.py``) whose table is
+in the README. Change these only together with a fresh run of it.
+"""
+
+from __future__ import annotations
+
+from .levels import Level
+
+__all__ = ["DEFAULT_DEPTH", "default_levels"]
+
+#: Levels above the base when neither ``depth`` nor ``levels`` is given.
+DEFAULT_DEPTH = 1
+
+#: Top-level step size of a level stack, by depth (index = depth).
+_TOP_LR = {1: 0.05, 2: 0.01}
+
+
+def default_levels(depth: int) -> tuple[Level, ...]:
+    """The default stack of ``depth`` levels: Adam-like levels in log space.
+
+    Level 1's step size (``~0.05``) means ``log a_0`` moves by at most about 5 % per
+    step: a step size 1e-7 too small grows to a useful one in a few hundred steps. Levels
+    above start from the same value and the top one is smaller, since it is fixed.
+    """
+    if depth == 0:
+        return ()
+    top = _TOP_LR.get(depth, 0.01)
+    lower = _TOP_LR[1]
+    return tuple(Level(kind="adam", lr=lower) for _ in range(depth - 1)) + (Level(kind="adam", lr=top),)

@@ -1,0 +1,210 @@
+"""Upper levels of a tower: scalar optimizers that learn the step size below them.
+
+Notation (see ``DEVELOPERS.md``): level 0 is the base optimizer, which moves the
+weights with step size ``a_0``. Level ``k >= 1`` learns ``a_{k-1}`` and has its own
+step size ``a_k``; the top level ``D``'s step size is fixed.
+
+Every learned step size lives in log space, so it is positive by construction::
+
+    a_0 = lr * exp(u_0)          (lr = group["lr"], owned by any scheduler)
+    a_k = exp(u_k)               for 1 <= k < D
+    a_D = levels[-1].lr          (fixed)
+
+One step ``s`` of the tower, given the base's dot product ``<g_s, d_{0,s-1}>``::
+
+    ĥ_1 = -a_{0,s-1} <g_s, d_{0,s-1}>                 (= dL_s/du_{0,s-1})
+    ĥ_{k+1} = -ĥ_k d_{k,s-1} a_{k,s-1}                 (= dL_s/du_{k,s-1})
+    d_{k,s} = ĥ_k                                     (kind "sgd")
+    d_{k,s} = m̂_k / (sqrt(v̂_k) + eps)                 (kind "adam", moments of ĥ_k)
+    u_{k-1,s} = u_{k-1,s-1} - a_{k,s} d_{k,s}          for k = D, D-1, ..., 1 (top-down)
+
+Top-down means level ``k`` uses the step size ``a_{k,s}`` that level ``k+1``
+produced in the same step. All state is float64 so that tiny hypergradients
+(step sizes of 1e-7 and below) neither underflow nor vanish under ``eps``.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+from dataclasses import dataclass
+
+import torch
+from torch import Tensor
+
+__all__ = [
+    "LEVEL_KINDS",
+    "LOG_STEP_BOUND",
+    "Level",
+    "current_step_sizes",
+    "init_tower_state",
+    "resolve_levels",
+    "tower_step",
+]
+
+LEVEL_KINDS = ("sgd", "adam")
+
+#: Log step sizes are clamped to ``[-LOG_STEP_BOUND, LOG_STEP_BOUND]`` (about 1e-30 ... 1e30
+#: relative for level 0), which keeps every step size finite by construction.
+LOG_STEP_BOUND = 69.0
+
+_STATE_DTYPE = torch.float64
+
+
+@dataclass(frozen=True)
+class Level:
+    """One upper level of a tower.
+
+    Args:
+        kind: ``"adam"`` (normalized moments of the log-space hypergradient; moves
+            ``log a`` by about ``lr`` per step whatever the scale of the loss) or
+            ``"sgd"`` (plain descent on ``log a``; scale-dependent).
+        lr: this level's own step size ``a_k``. Fixed if this is the top level,
+            otherwise its initial value, learned by the level above.
+        betas: moment coefficients for ``kind="adam"`` (default: (0.9, 0.999)).
+        eps: added to ``sqrt(v̂)`` for ``kind="adam"`` (default: 1e-30: hypergradients
+            are tiny when the step size is tiny, so a larger ``eps`` would freeze the level).
+    """
+
+    kind: str = "adam"
+    lr: float = 0.02
+    betas: tuple[float, float] = (0.9, 0.999)
+    eps: float = 1e-30
+
+    def __post_init__(self) -> None:
+        if self.kind not in LEVEL_KINDS:
+            raise ValueError(f"Invalid level kind: {self.kind!r}; expected one of {', '.join(map(repr, LEVEL_KINDS))}")
+        if not (isinstance(self.lr, (int, float)) and math.isfinite(self.lr) and self.lr > 0):
+            raise ValueError(f"Invalid level lr: {self.lr!r}; expected a finite number > 0")
+        if len(self.betas) != 2 or not all(0.0 <= b < 1.0 for b in self.betas):
+            raise ValueError(f"Invalid level betas: {self.betas!r}; expected two numbers in [0, 1)")
+        if not (math.isfinite(self.eps) and self.eps >= 0):
+            raise ValueError(f"Invalid level eps: {self.eps!r}; expected a finite number >= 0")
+
+
+def resolve_levels(depth: int | None, levels: Sequence[Level | str] | None) -> tuple[Level, ...]:
+    """Turn the ``depth`` / ``levels`` constructor arguments into a tuple of levels.
+
+    ``levels`` wins when given (a string is a level kind with that kind's default
+    settings); ``depth`` alone gives the measured default levels
+    (:func:`stepsize_tower.defaults.default_levels`); neither gives the default depth.
+    Giving both requires ``len(levels) == depth``.
+    """
+    from .defaults import DEFAULT_DEPTH, default_levels
+
+    if depth is not None and (isinstance(depth, bool) or not isinstance(depth, int) or depth < 0):
+        raise ValueError(f"Invalid depth: {depth!r}; expected an integer >= 0 (0 = a plain fixed-rate optimizer)")
+    if levels is None:
+        return default_levels(DEFAULT_DEPTH if depth is None else depth)
+    if isinstance(levels, (str, Level)):
+        raise ValueError(f"Invalid levels: {levels!r}; expected a list of Level objects or kind names")
+    resolved: list[Level] = []
+    for i, lv in enumerate(levels):
+        if isinstance(lv, Level):
+            resolved.append(lv)
+        elif isinstance(lv, str) and lv in LEVEL_KINDS:
+            resolved.append(Level(kind=lv))
+        else:
+            raise ValueError(
+                f"Invalid levels[{i}]: {lv!r}; expected a Level or one of {', '.join(map(repr, LEVEL_KINDS))}"
+            )
+    if depth is not None and depth != len(resolved):
+        raise ValueError(f"depth={depth} disagrees with len(levels)={len(resolved)}; pass one of them")
+    return tuple(resolved)
+
+
+def init_tower_state(levels: Sequence[Level], units: int, device: torch.device) -> dict[str, Tensor]:
+    """Fresh state for a tower of ``len(levels)`` levels over ``units`` independent step sizes.
+
+    Keys (``D = len(levels)``, ``U = units``):
+      ``log_step`` [U, D]: ``u_0`` (log factor on ``group["lr"]``) then ``u_1 .. u_{D-1}``.
+      ``prev_step`` [U, D]: ``a_{k,s-1}``, the step sizes used in the last step.
+      ``prev_dir`` [U, D]: ``d_{k,s-1}`` for levels ``1..D``.
+      ``exp_avg``, ``exp_avg_sq`` [U, D]: moments of ``ĥ`` (kind "adam").
+      ``hypergrad`` [U, D]: the last ``ĥ_1 .. ĥ_D`` (for inspection and tests).
+      ``prev_slope`` [U]: ``<g_{s-1}, d_{0,s-1}>``, the last step's directional slope.
+      ``step``, ``skipped``, ``retreats`` []: counters.
+    """
+    d = len(levels)
+    kw = {"dtype": _STATE_DTYPE, "device": device}
+    log_step = torch.zeros(units, d, **kw)
+    for k in range(1, d):
+        log_step[:, k] = math.log(levels[k - 1].lr)
+    return {
+        "log_step": log_step,
+        "prev_step": torch.zeros(units, d, **kw),
+        "prev_dir": torch.zeros(units, d, **kw),
+        "exp_avg": torch.zeros(units, d, **kw),
+        "exp_avg_sq": torch.zeros(units, d, **kw),
+        "hypergrad": torch.zeros(units, d, **kw),
+        "prev_slope": torch.zeros(units, **kw),
+        "step": torch.zeros((), **kw),
+        "skipped": torch.zeros((), **kw),
+        "retreats": torch.zeros((), **kw),
+    }
+
+
+def current_step_sizes(ts: dict[str, Tensor], levels: Sequence[Level], lr: float | Tensor) -> Tensor:
+    """All step sizes ``[a_0, a_1, ..., a_D]`` per unit, shape [U, D+1], from the state."""
+    u = ts["log_step"]
+    units, d = u.shape
+    out = torch.empty(units, d + 1, dtype=u.dtype, device=u.device)
+    out[:, :d] = u.exp()
+    out[:, d] = levels[-1].lr if d else 1.0
+    out[:, 0] *= lr
+    return out
+
+
+def tower_step(
+    ts: dict[str, Tensor],
+    levels: Sequence[Level],
+    dot_prev: Tensor,
+    lr: float | Tensor,
+) -> Tensor:
+    """Update every level in place from the base's ``<g_s, d_{0,s-1}>`` and return the new ``a_0`` [U].
+
+    ``dot_prev`` has shape [U]. On the first step (``ts["step"] == 0``) there is no previous
+    direction: the levels stay as they are and ``a_0 = lr * exp(u_0)``. Call it only for
+    steps that are taken (finite gradients, no retreat).
+    """
+    d = len(levels)
+    u = ts["log_step"]
+    if d == 0:
+        raise ValueError("tower_step needs at least one level; a depth-0 optimizer has nothing to learn")
+    has_prev = ts["step"] > 0
+    prev_step, prev_dir = ts["prev_step"], ts["prev_dir"]
+
+    # Hypergradients of every level, from values stored at the previous step.
+    h1 = -dot_prev.to(u) * prev_step[:, 0]
+    chain = torch.cat([torch.ones_like(h1)[:, None], -prev_dir[:, :-1] * prev_step[:, 1:]], dim=1)
+    hyper = h1[:, None] * torch.cumprod(chain, dim=1)
+
+    # Each level's direction from its hypergradient.
+    count = ts["step"]  # number of level updates so far == steps taken before this one
+    beta1 = torch.tensor([lv.betas[0] for lv in levels], dtype=u.dtype, device=u.device)
+    beta2 = torch.tensor([lv.betas[1] for lv in levels], dtype=u.dtype, device=u.device)
+    eps = torch.tensor([lv.eps for lv in levels], dtype=u.dtype, device=u.device)
+    is_adam = torch.tensor([lv.kind == "adam" for lv in levels], device=u.device)
+    m = torch.lerp(ts["exp_avg"], hyper, 1 - beta1)
+    v = beta2 * ts["exp_avg_sq"] + (1 - beta2) * hyper * hyper
+    bc1 = 1 - beta1**count
+    bc2 = 1 - beta2**count
+    adam_dir = (m / bc1) / ((v / bc2).sqrt() + eps)
+    direction = torch.where(is_adam, adam_dir, hyper)
+
+    # Top-down: level k moves u_{k-1} with the step size a_k it was just given.
+    new_u = u.clone()
+    step_k: Tensor | float = levels[-1].lr
+    for k in range(d, 0, -1):
+        new_u[:, k - 1] = (u[:, k - 1] - step_k * direction[:, k - 1]).clamp(-LOG_STEP_BOUND, LOG_STEP_BOUND)
+        step_k = new_u[:, k - 1].exp()
+
+    # Commit only where a previous direction existed.
+    u.copy_(torch.where(has_prev, new_u, u))
+    ts["exp_avg"].copy_(torch.where(has_prev, m, ts["exp_avg"]))
+    ts["exp_avg_sq"].copy_(torch.where(has_prev, v, ts["exp_avg_sq"]))
+    ts["prev_dir"].copy_(torch.where(has_prev, direction, prev_dir))
+    ts["hypergrad"].copy_(torch.where(has_prev, hyper, ts["hypergrad"]))
+    prev_step.copy_(u.exp())
+    prev_step[:, 0] *= lr
+    return prev_step[:, 0].clone()

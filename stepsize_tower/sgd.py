@@ -1,0 +1,166 @@
+"""SGD (with momentum, dampening, Nesterov and weight decay) as the base of a tower."""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from typing import Any
+
+import torch
+from torch import Tensor
+
+from . import _chunks
+from ._docs import TOWER_ARGS
+from .levels import Level, resolve_levels
+from .tower import TowerOptimizer
+
+__all__ = ["SGDRule", "TowerSGD"]
+
+
+def _grad(group: dict[str, Any], p: Tensor, grad: Tensor) -> Tensor:
+    """The gradient of the minimized loss, L2 weight decay included (as in ``torch.optim.SGD``)."""
+    g = -grad if group["maximize"] else grad
+    if group["weight_decay"] != 0:
+        g = g.add(p, alpha=group["weight_decay"])
+    return g
+
+
+class SGDRule:
+    """Level 0 of :class:`TowerSGD`: ``d_s = g_s``, ``buf_s``, or ``g_s + μ buf_s`` (Nesterov).
+
+    ``buf_s = μ buf_{s-1} + (1 - τ) g_s`` (``buf_1 = g_1``). The previous direction is the
+    momentum buffer itself for heavy ball; plain SGD and Nesterov keep the previous
+    gradient (``prev_grad``, one parameter-sized buffer) once a tower is on top.
+    """
+
+    def needs_history(self, group: dict[str, Any]) -> bool:
+        return group["momentum"] == 0 or group["nesterov"]
+
+    def probe(
+        self, group: dict[str, Any], p: Tensor, grad: Tensor, state: dict[str, Any], a_prev: Tensor
+    ) -> tuple[Tensor, Tensor]:
+        mu, damp = group["momentum"], group["dampening"]
+        g = _chunks.flat(_grad(group, p, grad))
+        gg = _chunks.dot(g, g)
+        buf = state.get("momentum_buffer")
+        prev = state.get("prev_grad")
+        g_buf = _chunks.dot(g, _chunks.flat(buf)) if buf is not None else None
+        g_prev = _chunks.dot(g, _chunks.flat(prev)) if prev is not None else None
+        zero = torch.zeros((), dtype=torch.float64, device=p.device)
+
+        if mu == 0:
+            return (g_prev if g_prev is not None else zero), gg
+        buf_new = gg if g_buf is None else mu * g_buf + (1 - damp) * gg  # <g, buf_s>
+        if not group["nesterov"]:
+            return (g_buf if g_buf is not None else zero), buf_new
+        dot_prev = zero if (g_prev is None or g_buf is None) else g_prev + mu * g_buf
+        return dot_prev, gg + mu * buf_new
+
+    def update(
+        self,
+        group: dict[str, Any],
+        params: list[Tensor],
+        grads: list[Tensor],
+        states: list[dict[str, Any]],
+        step_sizes: Sequence[Tensor | float],
+    ) -> None:
+        mu, damp = group["momentum"], group["dampening"]
+        keep_grad = bool(group["levels"]) and self.needs_history(group)
+        for p, grad, state, a in zip(params, grads, states, step_sizes, strict=True):
+            g = _grad(group, p, grad)
+            if keep_grad:
+                prev = state.get("prev_grad")
+                if prev is None:
+                    state["prev_grad"] = g.detach().clone(memory_format=torch.preserve_format)
+                else:
+                    prev.copy_(g)
+            d = g
+            if mu != 0:
+                buf = state.get("momentum_buffer")
+                if buf is None:
+                    buf = state["momentum_buffer"] = g.detach().clone()
+                else:
+                    buf.mul_(mu).add_(g, alpha=1 - damp)
+                d = g.add(buf, alpha=mu) if group["nesterov"] else buf
+            _move(p, d, a)
+
+    def retreat(self, group: dict[str, Any], p: Tensor, state: dict[str, Any], a_prev: Tensor, a_new: Tensor) -> None:
+        mu = group["momentum"]
+        if mu == 0:
+            d = state["prev_grad"]
+        elif group["nesterov"]:
+            d = state["prev_grad"].add(state["momentum_buffer"], alpha=mu)
+        else:
+            d = state["momentum_buffer"]
+        p.add_(d * (a_prev - a_new).to(d.dtype))
+
+
+def _move(p: Tensor, d: Tensor, a: Tensor | float) -> None:
+    """``p <- p - a d`` for a Python or tensor step size, without a host sync."""
+    if isinstance(a, Tensor):
+        p.sub_(d * a.to(d.dtype))
+    else:
+        p.add_(d, alpha=-a)
+
+
+class TowerSGD(TowerOptimizer):
+    __doc__ = rf"""SGD whose step size is learned online by a tower of hypergradient levels.
+
+    .. math::
+        \begin{{aligned}}
+        &g_s = \nabla L_s(w_{{s-1}}) + \lambda w_{{s-1}}, \qquad
+         b_s = \mu b_{{s-1}} + (1-\tau) g_s, \qquad
+         d_{{0,s}} = g_s \;|\; b_s \;|\; g_s + \mu b_s \\
+        &\hat h_{{1,s}} = -a_{{0,s-1}}\,\langle g_s, d_{{0,s-1}}\rangle
+         \qquad \text{{(the hypergradient of }} \log a_0 \text{{)}} \\
+        &\text{{levels }} D \dots 1:\; \log a_{{k-1,s}} = \log a_{{k-1,s-1}} - a_{{k,s}}\, d_{{k,s}}
+         \qquad\text{{(see }} \texttt{{stepsize\_tower.levels}} \text{{)}} \\
+        &w_s = w_{{s-1}} - a_{{0,s}}\, d_{{0,s}}, \qquad a_{{0,s}} = \mathrm{{lr}} \cdot e^{{u_{{0,s}}}}
+        \end{{aligned}}
+
+    With ``depth=0`` this is exactly :class:`torch.optim.SGD`.
+
+    Args:
+        params: iterable of parameters or parameter groups.
+        lr: initial step size, and the outer factor any scheduler rescales (default: 1e-2).
+        momentum: momentum factor μ (default: 0).
+        dampening: dampening τ for momentum (default: 0).
+        nesterov: use Nesterov momentum (default: False).
+        weight_decay: L2 penalty λ, part of the loss (default: 0).
+{TOWER_ARGS}
+    """
+
+    def __init__(
+        self,
+        params: Any,
+        lr: float | Tensor = 1e-2,
+        momentum: float = 0.0,
+        dampening: float = 0.0,
+        nesterov: bool = False,
+        weight_decay: float = 0.0,
+        *,
+        depth: int | None = None,
+        levels: Sequence[Level | str] | None = None,
+        granularity: str = "group",
+        retreat: bool = True,
+        maximize: bool = False,
+    ) -> None:
+        if not 0.0 <= momentum < 1.0:
+            raise ValueError(f"Invalid momentum value: {momentum}; expected 0 <= momentum < 1")
+        if not 0.0 <= dampening <= 1.0:
+            raise ValueError(f"Invalid dampening value: {dampening}; expected 0 <= dampening <= 1")
+        if weight_decay < 0.0:
+            raise ValueError(f"Invalid weight_decay value: {weight_decay}; expected weight_decay >= 0")
+        if nesterov and (momentum <= 0 or dampening != 0):
+            raise ValueError("Nesterov momentum requires momentum > 0 and dampening = 0")
+        defaults = {
+            "lr": lr,
+            "momentum": momentum,
+            "dampening": dampening,
+            "nesterov": nesterov,
+            "weight_decay": weight_decay,
+            "maximize": maximize,
+            "levels": resolve_levels(depth, levels),
+            "granularity": granularity,
+            "retreat": retreat,
+        }
+        super().__init__(params, defaults, SGDRule())

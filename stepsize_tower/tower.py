@@ -1,0 +1,284 @@
+"""The engine shared by every tower optimizer: one ``step`` for any base and any levels.
+
+A base (level 0, :class:`BaseRule`) knows how to move the weights and how to take the
+dot product of a new gradient with its previous direction; the levels
+(:mod:`stepsize_tower.levels`) turn that dot product into new step sizes. This module
+orders the two, handles skipped steps and retreats, and keeps every learned value in
+the optimizer's state.
+
+Order inside one step ``s`` (per parameter group)::
+
+    1. probe: dot_s = <g_s, d_{0,s-1}>, slope_s = <g_s, d_{0,s}>     (base; reads only)
+    2. non-finite dot or slope        -> skip: nothing changes, ``skipped += 1``
+    3. rho = dot_s / slope_{s-1} < -1 -> retreat (see below), ``retreats += 1``
+    4. levels, top-down               -> a_{0,s}                      (levels.tower_step)
+    5. base update                    -> w_s = w_{s-1} - a_{0,s} d_{0,s}
+
+Retreat: along the last direction ``d = d_{0,s-1}``, the loss ``φ(a) = L(w_{s-2} - a d)``
+has slope ``φ'(0) = -slope_{s-1}`` at the start of the last step and
+``φ'(a_{0,s-1}) = -dot_s`` at its end. On a quadratic, ``rho = φ'(a)/φ'(0) < -1`` exactly
+when the loss rose, and the minimizer along ``d`` is ``a / (1 - rho)``. So the last step
+is taken back and redone with that secant step size (at least ``RETREAT_MIN_FACTOR``
+times the old one)::
+
+    w <- w_{s-2} - a_new d,   a_new = a_{0,s-1} * max(1 / (1 - rho), RETREAT_MIN_FACTOR)
+
+The gradient ``g_s`` came from a rejected point, so it changes neither the base's
+moments nor the levels. This costs no extra forward pass and stops a step size that is
+orders of magnitude too large from wrecking the model in its first steps.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Callable, Iterable, Sequence
+from typing import Any, Protocol
+
+import torch
+from torch import Tensor
+from torch.optim import Optimizer
+
+from .levels import Level, current_step_sizes, init_tower_state, tower_step
+
+__all__ = ["GRANULARITIES", "RETREAT_MIN_FACTOR", "BaseRule", "TowerOptimizer"]
+
+#: Smallest factor one retreat applies to the step size (repeated retreats compound).
+RETREAT_MIN_FACTOR = 1e-3
+
+GRANULARITIES = ("group", "tensor")
+
+_TOWER_KEY = "tower"
+
+
+class BaseRule(Protocol):
+    """Level 0: the direction ``d_0`` and the weight update of one base optimizer."""
+
+    def needs_history(self, group: dict[str, Any]) -> bool:
+        """Whether :meth:`probe` needs state kept from the previous step."""
+        ...
+
+    def probe(
+        self, group: dict[str, Any], p: Tensor, grad: Tensor, state: dict[str, Any], a_prev: Tensor
+    ) -> tuple[Tensor, Tensor]:
+        """Return ``(<g_s, d_{0,s-1}>, <g_s, d_{0,s}>)`` for one tensor, without changing anything.
+
+        ``g_s`` is the gradient of the minimized loss (sign flipped under ``maximize``,
+        L2 weight decay included when the base treats it as part of the loss). The first
+        value is 0 when the tensor has no previous direction.
+        """
+        ...
+
+    def update(
+        self,
+        group: dict[str, Any],
+        params: list[Tensor],
+        grads: list[Tensor],
+        states: list[dict[str, Any]],
+        step_sizes: Sequence[Tensor | float],
+    ) -> None:
+        """Move every weight one step with its step size ``a_0``."""
+        ...
+
+    def retreat(self, group: dict[str, Any], p: Tensor, state: dict[str, Any], a_prev: Tensor, a_new: Tensor) -> None:
+        """Move the weight back along its last direction: ``w <- w + (a_prev - a_new) d_{0,s-1}``."""
+        ...
+
+
+def _levels_of(group: dict[str, Any]) -> tuple[Level, ...]:
+    return tuple(Level(**spec) for spec in group["levels"])
+
+
+def _level_specs(levels: Iterable[Level]) -> list[dict[str, Any]]:
+    """Plain dicts (not dataclasses) so checkpoints load with ``torch.load(weights_only=True)``."""
+    return [{"kind": lv.kind, "lr": lv.lr, "betas": tuple(lv.betas), "eps": lv.eps} for lv in levels]
+
+
+def _check_lr(lr: float | Tensor) -> None:
+    value = lr.item() if isinstance(lr, Tensor) else lr
+    if not (isinstance(value, (int, float)) and math.isfinite(value) and value >= 0):
+        raise ValueError(f"Invalid learning rate: {lr!r}; expected a finite number >= 0")
+
+
+class TowerOptimizer(Optimizer):
+    """A base optimizer whose step size is learned by a tower of levels.
+
+    Subclasses (:class:`~stepsize_tower.TowerSGD`, :class:`~stepsize_tower.TowerAdam`, ...)
+    choose the base rule and validate its hyperparameters; this class owns the step.
+
+    Per-group options (every one can differ between parameter groups):
+        ``lr``: the outer factor on the learned step size. Schedulers own it: the step
+            size actually used is ``group["lr"] * exp(u_0)``, where ``u_0`` is learned.
+        ``levels``: the upper levels, level 1 first (plain dicts of :class:`Level` fields).
+        ``granularity``: ``"group"`` (one learned step size per group) or ``"tensor"``.
+        ``retreat``: take back a step that made the loss rise along its direction.
+    """
+
+    _rule: BaseRule
+
+    def __init__(self, params: Any, defaults: dict[str, Any], rule: BaseRule) -> None:
+        _check_lr(defaults["lr"])
+        if defaults.get("granularity") not in GRANULARITIES:
+            raise ValueError(f"Invalid granularity: {defaults.get('granularity')!r}; expected one of {GRANULARITIES}")
+        defaults = dict(defaults)
+        defaults["levels"] = _level_specs(defaults["levels"])
+        self._rule = rule
+        super().__init__(params, defaults)
+
+    def __setstate__(self, state: dict[str, Any]) -> None:
+        super().__setstate__(state)
+        for group in self.param_groups:
+            group.setdefault("retreat", True)
+            group.setdefault("granularity", "group")
+            group.setdefault("maximize", False)
+
+    def __repr__(self) -> str:
+        lines = [self.__class__.__name__ + " ("]
+        for i, group in enumerate(self.param_groups):
+            lines.append(f"Parameter Group {i}")
+            for key in sorted(group):
+                if key not in ("params", _TOWER_KEY):
+                    lines.append(f"    {key}: {group[key]}")
+        lines.append(")")
+        return "\n".join(lines)
+
+    def add_param_group(self, param_group: dict[str, Any]) -> None:
+        if "levels" in param_group:
+            param_group = dict(param_group)
+            param_group["levels"] = _level_specs(
+                lv if isinstance(lv, Level) else Level(**lv) for lv in param_group["levels"]
+            )
+        if "lr" in param_group:
+            _check_lr(param_group["lr"])
+        param_group.pop(_TOWER_KEY, None)  # learned state is never shared between groups
+        super().add_param_group(param_group)
+
+    def load_state_dict(self, state_dict: dict[str, Any]) -> None:
+        super().load_state_dict(state_dict)
+        for group in self.param_groups:
+            ts = group.get(_TOWER_KEY)
+            if ts is not None and group["params"]:
+                device = group["params"][0].device
+                group[_TOWER_KEY] = {k: v.to(device) for k, v in ts.items()}
+
+    # ------------------------------------------------------------------ accessors
+
+    def step_sizes(self) -> list[list[float]]:
+        """Current step sizes per group, ``[a_0, a_1, ..., a_D]`` (``a_D`` is the fixed top).
+
+        ``a_0`` includes the group's current ``lr`` factor. With ``granularity="tensor"``
+        each level's value is the geometric mean over the group's tensors (see
+        :meth:`step_size_tensors` for every value). Reads device memory: call it for
+        logging, not inside a compiled region.
+        """
+        out = []
+        for group, sizes in zip(self.param_groups, self.step_size_tensors(), strict=True):
+            out.append(
+                [float(x) for x in sizes.log().mean(dim=0).exp()]
+                if sizes.shape[0] > 1
+                else [float(x) for x in sizes[0]]
+            )
+        return out
+
+    def step_size_tensors(self) -> list[Tensor]:
+        """Per group, a float64 tensor [units, D+1] of every step size (a copy)."""
+        out = []
+        for group in self.param_groups:
+            levels = _levels_of(group)
+            ts = group.get(_TOWER_KEY)
+            if ts is None:
+                ts = init_tower_state(levels, self._units(group, len(group["params"])), torch.device("cpu"))
+            out.append(current_step_sizes(ts, levels, group["lr"]).cpu())
+        return out
+
+    def skipped_steps(self) -> int:
+        """Steps skipped because a gradient (or its dot product) was not finite, over all groups."""
+        return int(sum(float(g[_TOWER_KEY]["skipped"]) for g in self.param_groups if _TOWER_KEY in g))
+
+    def retreats(self) -> int:
+        """Steps taken back because the loss rose along them, over all groups."""
+        return int(sum(float(g[_TOWER_KEY]["retreats"]) for g in self.param_groups if _TOWER_KEY in g))
+
+    # ------------------------------------------------------------------ the step
+
+    @staticmethod
+    def _units(group: dict[str, Any], n_params: int) -> int:
+        return n_params if group["granularity"] == "tensor" else 1
+
+    def _tower_state(self, group: dict[str, Any], device: torch.device) -> dict[str, Tensor]:
+        ts = group.get(_TOWER_KEY)
+        if ts is None:
+            ts = init_tower_state(_levels_of(group), self._units(group, len(group["params"])), device)
+            group[_TOWER_KEY] = ts
+        return ts
+
+    @torch.no_grad()
+    def step(self, closure: Callable[[], float] | None = None) -> Any:  # type: ignore[override]
+        """Perform one optimization step; runs ``closure`` under grad first and returns its loss."""
+        loss = None
+        if closure is not None:
+            with torch.enable_grad():
+                loss = closure()
+        for group in self.param_groups:
+            self._step_group(group)
+        return loss
+
+    def _step_group(self, group: dict[str, Any]) -> None:
+        indexed = [(i, p) for i, p in enumerate(group["params"]) if p.grad is not None]
+        if not indexed:
+            return
+        for _, p in indexed:
+            if p.grad.is_sparse:
+                raise RuntimeError(f"{self.__class__.__name__} does not support sparse gradients")
+            if torch.is_complex(p):
+                raise RuntimeError(f"{self.__class__.__name__} does not support complex parameters")
+        params = [p for _, p in indexed]
+        grads = [p.grad for p in params]
+        states = [self.state[p] for p in params]
+        levels = _levels_of(group)
+        ts = self._tower_state(group, params[0].device)
+        tensor_units = group["granularity"] == "tensor"
+        unit_of = [i for i, _ in indexed] if tensor_units else [0] * len(params)
+
+        if not levels:
+            finite = torch.stack([torch.isfinite(g).all() for g in grads]).all()
+            if not bool(finite):
+                ts["skipped"] += 1
+                return
+            ts["step"] += 1
+            self._rule.update(group, params, grads, states, [group["lr"]] * len(params))
+            return
+
+        a_prev = ts["prev_step"][:, 0]
+        dots, slopes = zip(
+            *(self._rule.probe(group, p, g, st, a_prev[u]) for p, g, st, u in zip(params, grads, states, unit_of)),
+            strict=True,
+        )
+        dot_t, slope_t = torch.stack(dots).double(), torch.stack(slopes).double()
+        units = ts["log_step"].shape[0]
+        unit_index = torch.tensor(unit_of, device=dot_t.device)
+        dot_u = torch.zeros(units, dtype=torch.float64, device=dot_t.device).index_add_(0, unit_index, dot_t)
+        slope_u = torch.zeros_like(dot_u).index_add_(0, unit_index, slope_t)
+
+        finite = torch.isfinite(dot_u).all() & torch.isfinite(slope_u).all()
+        prev_slope = ts["prev_slope"].sum()
+        rho = dot_u.sum() / prev_slope
+        retreat = (ts["step"] > 0) & (prev_slope > 0) & (rho < -1) & bool(group["retreat"])
+        skip_now, retreat_now = torch.stack([~finite, retreat]).tolist()
+
+        if skip_now:
+            ts["skipped"] += 1
+            return
+        if retreat_now:
+            factor = torch.clamp(1.0 / (1.0 - rho), min=RETREAT_MIN_FACTOR)
+            a_new = a_prev * factor
+            for p, st, u in zip(params, states, unit_of, strict=True):
+                self._rule.retreat(group, p, st, a_prev[u], a_new[u])
+            ts["log_step"][:, 0] += factor.log()
+            ts["prev_step"][:, 0] = a_new
+            ts["retreats"] += 1
+            return
+
+        a0 = tower_step(ts, levels, dot_u, group["lr"])
+        ts["prev_slope"].copy_(slope_u)
+        ts["step"] += 1
+        self._rule.update(group, params, grads, states, [a0[u] for u in unit_of])
