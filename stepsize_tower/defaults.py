@@ -28,4 +28,4 @@ def default_levels(depth: int) -> tuple[Level, ...]:
         return ()
     top = _TOP_LR.get(depth, 0.01)
     lower = _TOP_LR[1]
-    return tuple(Level(kind="adam", lr=lower) for _ in range(depth - 1)) + (Level(kind="adam", lr=top),)
+    return (*tuple(Level(kind="adam", lr=lower) for _ in range(depth - 1)), Level(kind="adam", lr=top))

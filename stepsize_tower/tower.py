@@ -171,7 +171,7 @@ class TowerOptimizer(Optimizer):
         logging, not inside a compiled region.
         """
         out = []
-        for group, sizes in zip(self.param_groups, self.step_size_tensors(), strict=True):
+        for _group, sizes in zip(self.param_groups, self.step_size_tensors(), strict=True):
             out.append(
                 [float(x) for x in sizes.log().mean(dim=0).exp()]
                 if sizes.shape[0] > 1
@@ -250,7 +250,10 @@ class TowerOptimizer(Optimizer):
 
         a_prev = ts["prev_step"][:, 0]
         dots, slopes = zip(
-            *(self._rule.probe(group, p, g, st, a_prev[u]) for p, g, st, u in zip(params, grads, states, unit_of)),
+            *(
+                self._rule.probe(group, p, g, st, a_prev[u])
+                for p, g, st, u in zip(params, grads, states, unit_of, strict=False)
+            ),
             strict=True,
         )
         dot_t, slope_t = torch.stack(dots).double(), torch.stack(slopes).double()
