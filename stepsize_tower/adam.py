@@ -10,6 +10,7 @@ from torch import Tensor
 
 from . import _chunks
 from ._docs import TOWER_ARGS
+from .defaults import DEFAULT_HYPER_LEVEL
 from .levels import Level, resolve_levels
 from .tower import TowerOptimizer
 
@@ -18,11 +19,35 @@ __all__ = ["AdamRule", "TowerAdam", "TowerAdamW"]
 _FUSED_DEVICES = ("cpu", "cuda")
 
 
+Beta = float | Tensor
+
+
+def _betas(group: dict[str, Any]) -> tuple[Beta, Beta]:
+    """The betas in use: the group's, or the learned ones (float64 tensors) with ``learn_betas``."""
+    if group.get("learn_betas"):
+        value = group["tower"]["hyper_value"]
+        return value[0], value[1]
+    beta1, beta2 = group["betas"]
+    return beta1, beta2
+
+
 def _bias_corrections(group: dict[str, Any], step: Tensor) -> tuple[Tensor, Tensor]:
     """``(1 - β1^t, sqrt(1 - β2^t))`` as float64 tensors, for a step count tensor ``t``."""
-    beta1, beta2 = group["betas"]
+    beta1, beta2 = _betas(group)
     t = step.double()
     return 1 - beta1**t, (1 - beta2**t).sqrt()
+
+
+def _update_moments(m: Tensor, v: Tensor, g: Tensor, beta1: Beta, beta2: Beta) -> None:
+    """In place: ``m <- β1 m + (1-β1) g``, ``v <- β2 v + (1-β2) g²`` (torch.optim's order of operations)."""
+    if isinstance(beta1, Tensor) or isinstance(beta2, Tensor):
+        m.lerp_(g, (1 - beta1).to(m.dtype) if isinstance(beta1, Tensor) else 1 - beta1)
+        v.mul_(beta2 if not isinstance(beta2, Tensor) else beta2.to(v.dtype)).addcmul_(
+            g, g * (1 - beta2 if not isinstance(beta2, Tensor) else (1 - beta2).to(v.dtype))
+        )
+    else:
+        m.lerp_(g, 1 - beta1)
+        v.mul_(beta2).addcmul_(g, g, value=1 - beta2)
 
 
 class AdamRule:
@@ -32,6 +57,14 @@ class AdamRule:
     The previous direction is recomputed from the moments, so a tower adds no
     parameter-sized buffer; for AdamW, ``w_{s-2} = (w_{s-1} + a u) / (1 - a λ)`` recovers
     the decay term of the last step exactly.
+
+    With ``learn_betas`` the tangents ``∂d_s/∂β1`` and ``∂d_s/∂β2`` are kept per parameter
+    (``beta1_tangent``, ``beta2_tangent``), one step back (``m_{s-1}``, ``v_{s-1}`` constant)::
+
+        ∂m̂/∂β1 = (m_{s-1} - g_s) / (1-β1^t) + m_s t β1^(t-1) / (1-β1^t)²
+        ∂v̂/∂β2 = (v_{s-1} - g_s²) / (1-β2^t) + v_s t β2^(t-1) / (1-β2^t)²
+        ∂d/∂β1 = (∂m̂/∂β1) / (sqrt(v̂) + eps)
+        ∂d/∂β2 = -m̂ / (sqrt(v̂) + eps)² · (∂v̂/∂β2) / (2 sqrt(v̂))
     """
 
     def __init__(self, decoupled: bool) -> None:
@@ -39,6 +72,9 @@ class AdamRule:
 
     def needs_history(self, group: dict[str, Any]) -> bool:
         return False
+
+    def hyper_initial(self, group: dict[str, Any]) -> list[float]:
+        return list(group["betas"]) if group.get("learn_betas") else []
 
     def _init(self, p: Tensor, state: dict[str, Any]) -> None:
         if "step" not in state:
@@ -54,9 +90,9 @@ class AdamRule:
 
     def probe(
         self, group: dict[str, Any], p: Tensor, grad: Tensor, state: dict[str, Any], a_prev: Tensor
-    ) -> tuple[Tensor, Tensor]:
+    ) -> tuple[Tensor, Tensor, list[Tensor]]:
         self._init(p, state)
-        beta1, beta2 = group["betas"]
+        beta1, beta2 = _betas(group)
         eps, wd = group["eps"], group["weight_decay"]
         step = state["step"]
         bc1_prev, bc2s_prev = _bias_corrections(group, step)
@@ -72,8 +108,9 @@ class AdamRule:
             if not first:
                 den = v.sqrt().div_(bc2s_prev.to(v.dtype)).add_(eps)
                 g_u_prev += _chunks.dot(g, m.div(den))
-            m_new = m.lerp(g, 1 - beta1)
-            den = v.mul(beta2).addcmul_(g, g, value=1 - beta2).sqrt_().div_(bc2s_new.to(v.dtype)).add_(eps)
+            m_new, v_new = m.clone(), v.clone()
+            _update_moments(m_new, v_new, g, beta1, beta2)
+            den = v_new.sqrt_().div_(bc2s_new.to(v.dtype)).add_(eps)
             g_u_new += _chunks.dot(g, m_new.div_(den))
             if self.decoupled and wd != 0:
                 g_w += _chunks.dot(g, w)
@@ -82,7 +119,12 @@ class AdamRule:
         if self.decoupled and wd != 0:
             dot_prev = torch.where(step > 0, (dot_prev + wd * g_w) / (1 - a_prev * wd), 0.0)
             slope = slope + wd * g_w
-        return dot_prev, slope
+        tangent_dots = []
+        if group.get("learn_betas"):
+            for key in ("beta1_tangent", "beta2_tangent"):
+                t = state.get(key)
+                tangent_dots.append(_chunks.dot(g_all, _chunks.flat(t)) if t is not None else g_u_prev * 0)
+        return dot_prev, slope, tangent_dots
 
     def update(
         self,
@@ -97,22 +139,46 @@ class AdamRule:
         if self._use_fused(group, params):
             self._update_fused(group, params, grads, states, step_sizes)
             return
-        beta1, beta2 = group["betas"]
+        beta1, beta2 = _betas(group)
         eps, wd = group["eps"], group["weight_decay"]
+        learn = bool(group.get("learn_betas"))
         for p, grad, st, a in zip(params, grads, states, step_sizes, strict=True):
             g = self._grad(group, p, grad)
             st["step"] += 1
-            st["exp_avg"].lerp_(g, 1 - beta1)
-            st["exp_avg_sq"].mul_(beta2).addcmul_(g, g, value=1 - beta2)
+            m, v = st["exp_avg"], st["exp_avg_sq"]
+            old = (m.clone(), v.clone()) if learn else None
+            _update_moments(m, v, g, beta1, beta2)
             bc1, bc2s = _bias_corrections(group, st["step"])
-            denom = (st["exp_avg_sq"].sqrt() / bc2s.to(p.dtype)).add_(eps)
+            denom = (v.sqrt() / bc2s.to(p.dtype)).add_(eps)
+            if old is not None:
+                self._keep_tangents(st, g, old[0], old[1], denom, beta1, beta2)
             if self.decoupled and wd != 0:
                 p.mul_(1 - a * wd)
             p.sub_(st["exp_avg"].div(denom).mul_((a / bc1).to(p.dtype)))
 
+    @staticmethod
+    def _keep_tangents(
+        st: dict[str, Any], g: Tensor, m_old: Tensor, v_old: Tensor, denom: Tensor, beta1: Beta, beta2: Beta
+    ) -> None:
+        """Store ``∂d_s/∂β1`` and ``∂d_s/∂β2`` (closed forms in the class docstring)."""
+        t = st["step"].double()
+        bc1, bc2 = 1 - beta1**t, 1 - beta2**t
+        m, v = st["exp_avg"], st["exp_avg_sq"]
+        dm = (m_old - g) / bc1 + m * (t * beta1 ** (t - 1) / bc1**2)
+        v_hat = v / bc2
+        dv = (v_old - g * g) / bc2 + v * (t * beta2 ** (t - 1) / bc2**2)
+        sqrt_v = v_hat.sqrt()
+        t1 = dm / denom
+        t2 = torch.where(sqrt_v > 0, -(m / bc1) / denom**2 * dv / (2 * sqrt_v), torch.zeros_like(v))
+        for key, value in (("beta1_tangent", t1), ("beta2_tangent", t2)):
+            if key in st:
+                st[key].copy_(value)
+            else:
+                st[key] = value.to(g.dtype)
+
     def _use_fused(self, group: dict[str, Any], params: list[Tensor]) -> bool:
         fused = group.get("fused")
-        if fused is False:
+        if fused is False or group.get("learn_betas"):
             return False
         return (
             all(p.device.type in _FUSED_DEVICES and p.dtype.is_floating_point for p in params)
@@ -195,6 +261,9 @@ class TowerAdam(TowerOptimizer):
         weight_decay: L2 penalty λ (TowerAdamW: decoupled decay) (default: 0; TowerAdamW: 1e-2).
         fused: use torch's fused kernel for the update; None picks it when the
             parameters allow (default: None).
+        learn_betas: learn β1 and β2 online as well, in logit space, with closed-form
+            hypergradients (see :class:`AdamRule`); uses the unfused update (default: False).
+        hyper_level: the :class:`Level` that learns the betas (default: Adam-like, lr 0.01).
 {TOWER_ARGS}
     """
 
@@ -215,6 +284,8 @@ class TowerAdam(TowerOptimizer):
         retreat: bool = True,
         maximize: bool = False,
         fused: bool | None = None,
+        learn_betas: bool = False,
+        hyper_level: Level | None = None,
     ) -> None:
         if weight_decay is None:
             weight_decay = self._default_weight_decay
@@ -222,6 +293,8 @@ class TowerAdam(TowerOptimizer):
             raise ValueError(f"Invalid epsilon value: {eps}; expected eps >= 0")
         if len(betas) != 2 or not all(0.0 <= b < 1.0 for b in betas):
             raise ValueError(f"Invalid betas: {betas}; expected two numbers in [0, 1)")
+        if learn_betas and not all(0.0 < b < 1.0 for b in betas):
+            raise ValueError(f"learn_betas=True needs initial betas in (0, 1); got betas={betas}")
         if not 0.0 <= weight_decay:
             raise ValueError(f"Invalid weight_decay value: {weight_decay}; expected weight_decay >= 0")
         defaults = {
@@ -234,6 +307,8 @@ class TowerAdam(TowerOptimizer):
             "levels": resolve_levels(depth, levels),
             "granularity": granularity,
             "retreat": retreat,
+            "learn_betas": learn_betas,
+            "hyper_level": hyper_level or DEFAULT_HYPER_LEVEL,
         }
         super().__init__(params, defaults, AdamRule(decoupled=self._decoupled))
 

@@ -8,10 +8,13 @@ from __future__ import annotations
 
 from .levels import Level
 
-__all__ = ["DEFAULT_DEPTH", "default_levels"]
+__all__ = ["DEFAULT_DEPTH", "DEFAULT_HYPER_LEVEL", "default_levels"]
 
 #: Levels above the base when neither ``depth`` nor ``levels`` is given.
 DEFAULT_DEPTH = 1
+
+#: The level that learns momentum or betas when asked to (logit space, fixed step size).
+DEFAULT_HYPER_LEVEL = Level(kind="adam", lr=0.01)
 
 #: Top-level step size of a level stack, by depth (index = depth).
 _TOP_LR = {1: 0.05, 2: 0.01}

@@ -10,6 +10,7 @@ from torch import Tensor
 
 from . import _chunks
 from ._docs import TOWER_ARGS
+from .defaults import DEFAULT_HYPER_LEVEL
 from .levels import Level, resolve_levels
 from .tower import TowerOptimizer
 
@@ -29,16 +30,24 @@ class SGDRule:
 
     ``buf_s = μ buf_{s-1} + (1 - τ) g_s`` (``buf_1 = g_1``). The previous direction is the
     momentum buffer itself for heavy ball; plain SGD and Nesterov keep the previous
-    gradient (``prev_grad``, one parameter-sized buffer) once a tower is on top.
+    gradient (``prev_grad``, one parameter-sized buffer) once a tower is on top. With
+    ``learn_momentum`` the tangent ``T_s = ∂d_s/∂μ`` (``buf_{s-1}``, or ``buf_s + μ buf_{s-1}``
+    for Nesterov) is kept as ``momentum_tangent``.
     """
+
+    def hyper_initial(self, group: dict[str, Any]) -> list[float]:
+        return [group["momentum"]] if group.get("learn_momentum") else []
+
+    def _mu(self, group: dict[str, Any]) -> float | Tensor:
+        return group["tower"]["hyper_value"][0] if group.get("learn_momentum") else group["momentum"]
 
     def needs_history(self, group: dict[str, Any]) -> bool:
         return group["momentum"] == 0 or group["nesterov"]
 
     def probe(
         self, group: dict[str, Any], p: Tensor, grad: Tensor, state: dict[str, Any], a_prev: Tensor
-    ) -> tuple[Tensor, Tensor]:
-        mu, damp = group["momentum"], group["dampening"]
+    ) -> tuple[Tensor, Tensor, list[Tensor]]:
+        mu, damp = self._mu(group), group["dampening"]
         g = _chunks.flat(_grad(group, p, grad))
         gg = _chunks.dot(g, g)
         buf = state.get("momentum_buffer")
@@ -46,14 +55,20 @@ class SGDRule:
         g_buf = _chunks.dot(g, _chunks.flat(buf)) if buf is not None else None
         g_prev = _chunks.dot(g, _chunks.flat(prev)) if prev is not None else None
         zero = torch.zeros((), dtype=torch.float64, device=p.device)
+        tangent = state.get("momentum_tangent")
+        tangent_dots = (
+            [_chunks.dot(g, _chunks.flat(tangent)) if tangent is not None else zero]
+            if group.get("learn_momentum")
+            else []
+        )
 
-        if mu == 0:
-            return (g_prev if g_prev is not None else zero), gg
+        if group["momentum"] == 0:
+            return (g_prev if g_prev is not None else zero), gg, tangent_dots
         buf_new = gg if g_buf is None else mu * g_buf + (1 - damp) * gg  # <g, buf_s>
         if not group["nesterov"]:
-            return (g_buf if g_buf is not None else zero), buf_new
+            return (g_buf if g_buf is not None else zero), buf_new, tangent_dots
         dot_prev = zero if (g_prev is None or g_buf is None) else g_prev + mu * g_buf
-        return dot_prev, gg + mu * buf_new
+        return dot_prev, gg + mu * buf_new, tangent_dots
 
     def update(
         self,
@@ -63,35 +78,50 @@ class SGDRule:
         states: list[dict[str, Any]],
         step_sizes: Sequence[Tensor | float],
     ) -> None:
-        mu, damp = group["momentum"], group["dampening"]
+        mu, damp = self._mu(group), group["dampening"]
         keep_grad = bool(group["levels"]) and self.needs_history(group)
+        learn = bool(group.get("learn_momentum"))
         for p, grad, state, a in zip(params, grads, states, step_sizes, strict=True):
             g = _grad(group, p, grad)
             if keep_grad:
-                prev = state.get("prev_grad")
-                if prev is None:
-                    state["prev_grad"] = g.detach().clone(memory_format=torch.preserve_format)
-                else:
-                    prev.copy_(g)
+                _keep(state, "prev_grad", g)
             d = g
-            if mu != 0:
+            if group["momentum"] != 0:
                 buf = state.get("momentum_buffer")
                 if buf is None:
                     buf = state["momentum_buffer"] = g.detach().clone()
+                    if learn:
+                        _keep(state, "momentum_tangent", torch.zeros_like(g))
                 else:
+                    if learn:
+                        _keep(state, "momentum_tangent", buf)  # ∂buf_s/∂μ = buf_{s-1}
                     buf.mul_(mu).add_(g, alpha=1 - damp)
-                d = g.add(buf, alpha=mu) if group["nesterov"] else buf
+                if group["nesterov"]:
+                    d = g + mu * buf
+                    if learn:  # ∂(g + μ buf_s)/∂μ = buf_s + μ buf_{s-1}
+                        state["momentum_tangent"].mul_(mu).add_(buf)
+                else:
+                    d = buf
             _move(p, d, a)
 
     def retreat(self, group: dict[str, Any], p: Tensor, state: dict[str, Any], a_prev: Tensor, a_new: Tensor) -> None:
-        mu = group["momentum"]
-        if mu == 0:
+        mu = self._mu(group)
+        if group["momentum"] == 0:
             d = state["prev_grad"]
         elif group["nesterov"]:
-            d = state["prev_grad"].add(state["momentum_buffer"], alpha=mu)
+            d = state["prev_grad"] + mu * state["momentum_buffer"]
         else:
             d = state["momentum_buffer"]
         p.add_(d * (a_prev - a_new).to(d.dtype))
+
+
+def _keep(state: dict[str, Any], key: str, value: Tensor) -> None:
+    """``state[key] = value`` into a persistent buffer (allocated on first use)."""
+    buf = state.get(key)
+    if buf is None:
+        state[key] = value.detach().clone(memory_format=torch.preserve_format)
+    else:
+        buf.copy_(value)
 
 
 def _move(p: Tensor, d: Tensor, a: Tensor | float) -> None:
@@ -126,6 +156,9 @@ class TowerSGD(TowerOptimizer):
         dampening: dampening τ for momentum (default: 0).
         nesterov: use Nesterov momentum (default: False).
         weight_decay: L2 penalty λ, part of the loss (default: 0).
+        learn_momentum: learn μ online as well, in logit space, with the closed-form
+            hypergradient ``-a_0 <g_s, ∂d_{{0,s-1}}/∂μ>`` (default: False).
+        hyper_level: the :class:`Level` that learns μ (default: Adam-like, lr 0.01).
 {TOWER_ARGS}
     """
 
@@ -143,7 +176,11 @@ class TowerSGD(TowerOptimizer):
         granularity: str = "group",
         retreat: bool = True,
         maximize: bool = False,
+        learn_momentum: bool = False,
+        hyper_level: Level | None = None,
     ) -> None:
+        if learn_momentum and not 0.0 < momentum < 1.0:
+            raise ValueError(f"learn_momentum=True needs an initial momentum in (0, 1); got momentum={momentum}")
         if not 0.0 <= momentum < 1.0:
             raise ValueError(f"Invalid momentum value: {momentum}; expected 0 <= momentum < 1")
         if not 0.0 <= dampening <= 1.0:
@@ -162,5 +199,7 @@ class TowerSGD(TowerOptimizer):
             "levels": resolve_levels(depth, levels),
             "granularity": granularity,
             "retreat": retreat,
+            "learn_momentum": learn_momentum,
+            "hyper_level": hyper_level or DEFAULT_HYPER_LEVEL,
         }
         super().__init__(params, defaults, SGDRule())

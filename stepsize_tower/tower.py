@@ -38,6 +38,7 @@ import torch
 from torch import Tensor
 from torch.optim import Optimizer
 
+from .hyper import hyper_step, init_hyper_state
 from .levels import Level, current_step_sizes, init_tower_state, tower_step
 
 __all__ = ["GRANULARITIES", "RETREAT_MIN_FACTOR", "BaseRule", "TowerOptimizer"]
@@ -57,14 +58,19 @@ class BaseRule(Protocol):
         """Whether :meth:`probe` needs state kept from the previous step."""
         ...
 
+    def hyper_initial(self, group: dict[str, Any]) -> list[float]:
+        """Initial values of the hyperparameters in (0, 1) this group learns (usually none)."""
+        ...
+
     def probe(
         self, group: dict[str, Any], p: Tensor, grad: Tensor, state: dict[str, Any], a_prev: Tensor
-    ) -> tuple[Tensor, Tensor]:
-        """Return ``(<g_s, d_{0,s-1}>, <g_s, d_{0,s}>)`` for one tensor, without changing anything.
+    ) -> tuple[Tensor, Tensor, list[Tensor]]:
+        """Return ``(<g_s, d_{0,s-1}>, <g_s, d_{0,s}>, [<g_s, T_j> ...])`` for one tensor; change nothing.
 
         ``g_s`` is the gradient of the minimized loss (sign flipped under ``maximize``,
         L2 weight decay included when the base treats it as part of the loss). The first
-        value is 0 when the tensor has no previous direction.
+        value is 0 when the tensor has no previous direction. ``T_j = ∂d_{0,s-1}/∂θ_j`` for
+        each learned hyperparameter (see :mod:`stepsize_tower.hyper`).
         """
         ...
 
@@ -88,9 +94,14 @@ def _levels_of(group: dict[str, Any]) -> tuple[Level, ...]:
     return tuple(Level(**spec) for spec in group["levels"])
 
 
-def _level_specs(levels: Iterable[Level]) -> list[dict[str, Any]]:
-    """Plain dicts (not dataclasses) so checkpoints load with ``torch.load(weights_only=True)``."""
-    return [{"kind": lv.kind, "lr": lv.lr, "betas": tuple(lv.betas), "eps": lv.eps} for lv in levels]
+def _level_spec(level: Level | dict[str, Any]) -> dict[str, Any]:
+    """A plain dict (not a dataclass) so checkpoints load with ``torch.load(weights_only=True)``."""
+    lv = level if isinstance(level, Level) else Level(**level)
+    return {"kind": lv.kind, "lr": lv.lr, "betas": tuple(lv.betas), "eps": lv.eps}
+
+
+def _level_specs(levels: Iterable[Level | dict[str, Any]]) -> list[dict[str, Any]]:
+    return [_level_spec(lv) for lv in levels]
 
 
 def _check_lr(lr: float | Tensor) -> None:
@@ -121,6 +132,8 @@ class TowerOptimizer(Optimizer):
             raise ValueError(f"Invalid granularity: {defaults.get('granularity')!r}; expected one of {GRANULARITIES}")
         defaults = dict(defaults)
         defaults["levels"] = _level_specs(defaults["levels"])
+        if "hyper_level" in defaults:
+            defaults["hyper_level"] = _level_spec(defaults["hyper_level"])
         self._rule = rule
         super().__init__(params, defaults)
 
@@ -142,11 +155,11 @@ class TowerOptimizer(Optimizer):
         return "\n".join(lines)
 
     def add_param_group(self, param_group: dict[str, Any]) -> None:
+        param_group = dict(param_group)
         if "levels" in param_group:
-            param_group = dict(param_group)
-            param_group["levels"] = _level_specs(
-                lv if isinstance(lv, Level) else Level(**lv) for lv in param_group["levels"]
-            )
+            param_group["levels"] = _level_specs(param_group["levels"])
+        if "hyper_level" in param_group:
+            param_group["hyper_level"] = _level_spec(param_group["hyper_level"])
         if "lr" in param_group:
             _check_lr(param_group["lr"])
         param_group.pop(_TOWER_KEY, None)  # learned state is never shared between groups
@@ -194,6 +207,22 @@ class TowerOptimizer(Optimizer):
         """Steps skipped because a gradient (or its dot product) was not finite, over all groups."""
         return int(sum(float(g[_TOWER_KEY]["skipped"]) for g in self.param_groups if _TOWER_KEY in g))
 
+    def hyperparameters(self) -> list[dict[str, float]]:
+        """Per group, the learned momentum (``{"momentum": μ}``) or betas (``{"beta1", "beta2"}``).
+
+        Empty dicts for groups that learn neither. Reads device memory: for logging.
+        """
+        out: list[dict[str, float]] = []
+        for group in self.param_groups:
+            ts = group.get(_TOWER_KEY)
+            if ts is None or "hyper_value" not in ts:
+                values = self._rule.hyper_initial(group)
+            else:
+                values = [float(x) for x in ts["hyper_value"]]
+            names = ["momentum"] if group.get("learn_momentum") else ["beta1", "beta2"]
+            out.append(dict(zip(names, values, strict=False)) if values else {})
+        return out
+
     def retreats(self) -> int:
         """Steps taken back because the loss rose along them, over all groups."""
         return int(sum(float(g[_TOWER_KEY]["retreats"]) for g in self.param_groups if _TOWER_KEY in g))
@@ -208,6 +237,9 @@ class TowerOptimizer(Optimizer):
         ts = group.get(_TOWER_KEY)
         if ts is None:
             ts = init_tower_state(_levels_of(group), self._units(group, len(group["params"])), device)
+            hyper = self._rule.hyper_initial(group)
+            if hyper:
+                ts.update(init_hyper_state(hyper, device))
             group[_TOWER_KEY] = ts
         return ts
 
@@ -239,7 +271,8 @@ class TowerOptimizer(Optimizer):
         tensor_units = group["granularity"] == "tensor"
         unit_of = [i for i, _ in indexed] if tensor_units else [0] * len(params)
 
-        if not levels:
+        learns_hyper = "hyper_value" in ts
+        if not levels and not learns_hyper:
             finite = torch.stack([torch.isfinite(g).all() for g in grads]).all()
             if not bool(finite):
                 ts["skipped"] += 1
@@ -248,24 +281,29 @@ class TowerOptimizer(Optimizer):
             self._rule.update(group, params, grads, states, [group["lr"]] * len(params))
             return
 
-        a_prev = ts["prev_step"][:, 0]
-        dots, slopes = zip(
-            *(
-                self._rule.probe(group, p, g, st, a_prev[u])
-                for p, g, st, u in zip(params, grads, states, unit_of, strict=False)
-            ),
-            strict=True,
-        )
-        dot_t, slope_t = torch.stack(dots).double(), torch.stack(slopes).double()
+        lr0 = torch.as_tensor(group["lr"], dtype=torch.float64, device=ts["step"].device).reshape(1)
+        a_prev = ts["prev_step"][:, 0] if levels else ts.get("prev_lr", lr0).expand(ts["log_step"].shape[0])
+        probes = [
+            self._rule.probe(group, p, g, st, a_prev[u])
+            for p, g, st, u in zip(params, grads, states, unit_of, strict=True)
+        ]
+        dot_t = torch.stack([pr[0] for pr in probes]).double()
+        slope_t = torch.stack([pr[1] for pr in probes]).double()
         units = ts["log_step"].shape[0]
         unit_index = torch.tensor(unit_of, device=dot_t.device)
         dot_u = torch.zeros(units, dtype=torch.float64, device=dot_t.device).index_add_(0, unit_index, dot_t)
         slope_u = torch.zeros_like(dot_u).index_add_(0, unit_index, slope_t)
+        checks = [dot_u, slope_u]
+        if learns_hyper:
+            tangent_dots = torch.stack([torch.stack(pr[2]) for pr in probes]).double().sum(dim=0)
+            checks.append(tangent_dots)
 
-        finite = torch.isfinite(dot_u).all() & torch.isfinite(slope_u).all()
+        finite = torch.stack([torch.isfinite(c).all() for c in checks]).all()
         prev_slope = ts["prev_slope"].sum()
         rho = dot_u.sum() / prev_slope
-        retreat = (ts["step"] > 0) & (prev_slope > 0) & (rho < -1) & bool(group["retreat"])
+        retreat = (ts["step"] > 0) & (prev_slope > 0) & (rho < -1)
+        if not (group["retreat"] and levels):
+            retreat = torch.zeros_like(retreat)
         skip_now, retreat_now = torch.stack([~finite, retreat]).tolist()
 
         if skip_now:
@@ -281,7 +319,10 @@ class TowerOptimizer(Optimizer):
             ts["retreats"] += 1
             return
 
-        a0 = tower_step(ts, levels, dot_u, group["lr"])
+        if learns_hyper:
+            hyper_step(ts, tangent_dots, a_prev.mean(), Level(**group["hyper_level"]))
+            ts["prev_lr"] = lr0
+        a0 = tower_step(ts, levels, dot_u, group["lr"]) if levels else lr0.expand(units)
         ts["prev_slope"].copy_(slope_u)
         ts["step"] += 1
         self._rule.update(group, params, grads, states, [a0[u] for u in unit_of])
