@@ -60,7 +60,7 @@ def _run_until(opt_factory, loss, steps):
 def test_learned_momentum_hypergradient_matches_autograd_and_finite_differences(nesterov):
     loss = _problem()
     steps = 5
-    w, opt, snaps = _run_until(
+    _, opt, snaps = _run_until(
         lambda p: TowerSGD(p, lr=0.05, momentum=0.6, nesterov=nesterov, depth=1, retreat=False, learn_momentum=True),
         loss,
         steps,
@@ -94,7 +94,7 @@ def test_learned_betas_hypergradients_match_autograd_and_finite_differences(cls)
     loss = _problem(1)
     steps = 6
     wd = 0.05
-    w, opt, snaps = _run_until(
+    _, opt, snaps = _run_until(
         lambda p: cls(p, lr=0.01, weight_decay=wd, depth=1, retreat=False, learn_betas=True), loss, steps
     )
     w_before, sd_before = snaps[steps - 2]
