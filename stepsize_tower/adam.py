@@ -10,7 +10,7 @@ from torch import Tensor
 
 from . import _chunks
 from ._docs import TOWER_ARGS
-from .defaults import DEFAULT_HYPER_LEVEL
+from .defaults import DEFAULT_HORIZON, DEFAULT_HYPER_LEVEL
 from .levels import Level, resolve_levels
 from .tower import TowerOptimizer
 
@@ -82,6 +82,9 @@ class AdamRule:
             state["exp_avg"] = torch.zeros_like(p, memory_format=torch.preserve_format)
             state["exp_avg_sq"] = torch.zeros_like(p, memory_format=torch.preserve_format)
 
+    def loss_grad(self, group: dict[str, Any], p: Tensor, grad: Tensor) -> Tensor:
+        return self._grad(group, p, grad)
+
     def _grad(self, group: dict[str, Any], p: Tensor, grad: Tensor) -> Tensor:
         g = -grad if group["maximize"] else grad
         if group["weight_decay"] != 0 and not self.decoupled:
@@ -89,7 +92,14 @@ class AdamRule:
         return g
 
     def probe(
-        self, group: dict[str, Any], p: Tensor, grad: Tensor, state: dict[str, Any], a_prev: Tensor
+        self,
+        group: dict[str, Any],
+        p: Tensor,
+        grad: Tensor,
+        state: dict[str, Any],
+        a_prev: Tensor,
+        *,
+        exact: bool = True,
     ) -> tuple[Tensor, Tensor, list[Tensor]]:
         self._init(p, state)
         beta1, beta2 = _betas(group)
@@ -104,7 +114,7 @@ class AdamRule:
         g_u_new = torch.zeros_like(g_u_prev)
         g_w = torch.zeros_like(g_u_prev)
         first = bool(step == 0) if step.device.type == "cpu" else False
-        for g, m, v, w in _chunks.chunks(g_all, m_all, v_all, p_all):
+        for g, m, v, w in _chunks.chunks(g_all, m_all, v_all, p_all) if exact else ():
             if not first:
                 den = v.sqrt().div_(bc2s_prev.to(v.dtype)).add_(eps)
                 g_u_prev += _chunks.dot(g, m.div(den))
@@ -282,6 +292,7 @@ class TowerAdam(TowerOptimizer):
         levels: Sequence[Level | str] | None = None,
         granularity: str = "group",
         retreat: bool = True,
+        horizon: float | None = None,
         maximize: bool = False,
         fused: bool | None = None,
         learn_betas: bool = False,
@@ -307,10 +318,14 @@ class TowerAdam(TowerOptimizer):
             "levels": resolve_levels(depth, levels),
             "granularity": granularity,
             "retreat": retreat,
+            "horizon": DEFAULT_HORIZON if horizon is None else horizon,
             "learn_betas": learn_betas,
             "hyper_level": hyper_level or DEFAULT_HYPER_LEVEL,
         }
-        super().__init__(params, defaults, AdamRule(decoupled=self._decoupled))
+        super().__init__(params, defaults)
+
+    def _make_rule(self) -> AdamRule:
+        return AdamRule(decoupled=self._decoupled)
 
 
 class TowerAdamW(TowerAdam):

@@ -8,10 +8,16 @@ from __future__ import annotations
 
 from .levels import Level
 
-__all__ = ["DEFAULT_DEPTH", "DEFAULT_HYPER_LEVEL", "default_levels"]
+__all__ = ["DEFAULT_DEPTH", "DEFAULT_HORIZON", "DEFAULT_HYPER_LEVEL", "default_levels"]
 
 #: Levels above the base when neither ``depth`` nor ``levels`` is given.
 DEFAULT_DEPTH = 1
+
+#: Decay γ of the trail of updates the level-0 hypergradient is taken against (0 = one step
+#: back, the published rule). A one-step hypergradient under minibatch noise prefers step
+#: sizes that are too small (short-horizon bias); a trail of about 1 / (1 - γ) updates lets
+#: oscillations cancel and measures whether the net recent movement still goes downhill.
+DEFAULT_HORIZON = 0.99
 
 #: The level that learns momentum or betas when asked to (logit space, fixed step size).
 DEFAULT_HYPER_LEVEL = Level(kind="adam", lr=0.01)

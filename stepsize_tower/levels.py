@@ -10,9 +10,11 @@ Every learned step size lives in log space, so it is positive by construction::
     a_k = exp(u_k)               for 1 <= k < D
     a_D = levels[-1].lr          (fixed)
 
-One step ``s`` of the tower, given the base's dot product ``<g_s, d_{0,s-1}>``::
+One step ``s`` of the tower, given the base's dot product ``<g_s, Δ>`` of the new gradient
+with the last update ``Δ = a_{0,s-1} d_{0,s-1}`` (horizon 0, one step back) or with the
+decaying trail of updates ``D_{s-1} = Σ_j γ^(s-1-j) Δ_j`` (horizon γ > 0)::
 
-    ĥ_1 = -a_{0,s-1} <g_s, d_{0,s-1}>                 (= dL_s/du_{0,s-1})
+    ĥ_1 = -<g_s, Δ>                                    (= dL_s/du_{0,s-1} when γ = 0)
     ĥ_{k+1} = -ĥ_k d_{k,s-1} a_{k,s-1}                 (= dL_s/du_{k,s-1})
     d_{k,s} = ĥ_k                                     (kind "sgd")
     d_{k,s} = m̂_k / (sqrt(v̂_k) + eps)                 (kind "adam", moments of ĥ_k)
@@ -123,7 +125,7 @@ def init_tower_state(levels: Sequence[Level], units: int, device: torch.device) 
       ``exp_avg``, ``exp_avg_sq`` [U, D]: moments of ``ĥ`` (kind "adam").
       ``hypergrad`` [U, D]: the last ``ĥ_1 .. ĥ_D`` (for inspection and tests).
       ``prev_slope`` [U]: ``<g_{s-1}, d_{0,s-1}>``, the last step's directional slope.
-      ``step``, ``skipped``, ``retreats`` []: counters.
+      ``step``, ``skipped``, ``retreats`` []: counters; ``retreated`` []: 1 if the last call retreated.
     """
     d = len(levels)
     kw = {"dtype": _STATE_DTYPE, "device": device}
@@ -141,6 +143,7 @@ def init_tower_state(levels: Sequence[Level], units: int, device: torch.device) 
         "step": torch.zeros((), **kw),
         "skipped": torch.zeros((), **kw),
         "retreats": torch.zeros((), **kw),
+        "retreated": torch.zeros((), **kw),
     }
 
 
@@ -158,12 +161,12 @@ def current_step_sizes(ts: dict[str, Tensor], levels: Sequence[Level], lr: float
 def tower_step(
     ts: dict[str, Tensor],
     levels: Sequence[Level],
-    dot_prev: Tensor,
+    update_dot: Tensor,
     lr: float | Tensor,
 ) -> Tensor:
-    """Update every level in place from the base's ``<g_s, d_{0,s-1}>`` and return the new ``a_0`` [U].
+    """Update every level in place from ``<g_s, Δ>`` and return the new ``a_0`` [U].
 
-    ``dot_prev`` has shape [U]. On the first step (``ts["step"] == 0``) there is no previous
+    ``update_dot`` has shape [U]: the new gradient against the last update (or the trail). On the first step (``ts["step"] == 0``) there is no previous
     direction: the levels stay as they are and ``a_0 = lr * exp(u_0)``. Call it only for
     steps that are taken (finite gradients, no retreat).
     """
@@ -175,7 +178,7 @@ def tower_step(
     prev_step, prev_dir = ts["prev_step"], ts["prev_dir"]
 
     # Hypergradients of every level, from values stored at the previous step.
-    h1 = -dot_prev.to(u) * prev_step[:, 0]
+    h1 = -update_dot.to(u)
     chain = torch.cat([torch.ones_like(h1)[:, None], -prev_dir[:, :-1] * prev_step[:, 1:]], dim=1)
     hyper = h1[:, None] * torch.cumprod(chain, dim=1)
 

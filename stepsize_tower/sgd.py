@@ -10,7 +10,7 @@ from torch import Tensor
 
 from . import _chunks
 from ._docs import TOWER_ARGS
-from .defaults import DEFAULT_HYPER_LEVEL
+from .defaults import DEFAULT_HORIZON, DEFAULT_HYPER_LEVEL
 from .levels import Level, resolve_levels
 from .tower import TowerOptimizer
 
@@ -38,6 +38,9 @@ class SGDRule:
     def hyper_initial(self, group: dict[str, Any]) -> list[float]:
         return [group["momentum"]] if group.get("learn_momentum") else []
 
+    def loss_grad(self, group: dict[str, Any], p: Tensor, grad: Tensor) -> Tensor:
+        return _grad(group, p, grad)
+
     def _mu(self, group: dict[str, Any]) -> float | Tensor:
         return group["tower"]["hyper_value"][0] if group.get("learn_momentum") else group["momentum"]
 
@@ -45,7 +48,14 @@ class SGDRule:
         return group["momentum"] == 0 or group["nesterov"]
 
     def probe(
-        self, group: dict[str, Any], p: Tensor, grad: Tensor, state: dict[str, Any], a_prev: Tensor
+        self,
+        group: dict[str, Any],
+        p: Tensor,
+        grad: Tensor,
+        state: dict[str, Any],
+        a_prev: Tensor,
+        *,
+        exact: bool = True,
     ) -> tuple[Tensor, Tensor, list[Tensor]]:
         mu, damp = self._mu(group), group["dampening"]
         g = _chunks.flat(_grad(group, p, grad))
@@ -175,6 +185,7 @@ class TowerSGD(TowerOptimizer):
         levels: Sequence[Level | str] | None = None,
         granularity: str = "group",
         retreat: bool = True,
+        horizon: float | None = None,
         maximize: bool = False,
         learn_momentum: bool = False,
         hyper_level: Level | None = None,
@@ -199,7 +210,11 @@ class TowerSGD(TowerOptimizer):
             "levels": resolve_levels(depth, levels),
             "granularity": granularity,
             "retreat": retreat,
+            "horizon": DEFAULT_HORIZON if horizon is None else horizon,
             "learn_momentum": learn_momentum,
             "hyper_level": hyper_level or DEFAULT_HYPER_LEVEL,
         }
-        super().__init__(params, defaults, SGDRule())
+        super().__init__(params, defaults)
+
+    def _make_rule(self) -> SGDRule:
+        return SGDRule()

@@ -38,13 +38,19 @@ import torch
 from torch import Tensor
 from torch.optim import Optimizer
 
+from . import _chunks
 from .hyper import hyper_step, init_hyper_state
 from .levels import Level, current_step_sizes, init_tower_state, tower_step
 
-__all__ = ["GRANULARITIES", "RETREAT_MIN_FACTOR", "BaseRule", "TowerOptimizer"]
+__all__ = ["GRANULARITIES", "RETREAT_MIN_FACTOR", "RETREAT_WINDOW", "BaseRule", "TowerOptimizer"]
 
-#: Smallest factor one retreat applies to the step size (repeated retreats compound).
-RETREAT_MIN_FACTOR = 1e-3
+#: Smallest factor one retreat applies to the step size (retreats on later steps compound).
+RETREAT_MIN_FACTOR = 1e-4
+
+#: Retreats are considered during the first this-many taken steps only: the start-up phase in
+#: which the typed step size is still untested. Later, minibatch noise alone makes consecutive
+#: gradients oppose often enough that the test would cut good step sizes (measured: see README).
+RETREAT_WINDOW = 20
 
 GRANULARITIES = ("group", "tensor")
 
@@ -62,10 +68,16 @@ class BaseRule(Protocol):
         """Initial values of the hyperparameters in (0, 1) this group learns (usually none)."""
         ...
 
+    def loss_grad(self, group: dict[str, Any], p: Tensor, grad: Tensor) -> Tensor:
+        """The gradient of the minimized loss (``maximize`` and L2 decay applied)."""
+        ...
+
     def probe(
-        self, group: dict[str, Any], p: Tensor, grad: Tensor, state: dict[str, Any], a_prev: Tensor
+        self, group: dict[str, Any], p: Tensor, grad: Tensor, state: dict[str, Any], a_prev: Tensor, *, exact: bool
     ) -> tuple[Tensor, Tensor, list[Tensor]]:
         """Return ``(<g_s, d_{0,s-1}>, <g_s, d_{0,s}>, [<g_s, T_j> ...])`` for one tensor; change nothing.
+
+        With ``exact=False`` the first two are not needed and may be returned as zeros.
 
         ``g_s`` is the gradient of the minimized loss (sign flipped under ``maximize``,
         L2 weight decay included when the base treats it as part of the loss). The first
@@ -110,6 +122,11 @@ def _check_lr(lr: float | Tensor) -> None:
         raise ValueError(f"Invalid learning rate: {lr!r}; expected a finite number >= 0")
 
 
+def _check_horizon(horizon: float) -> None:
+    if not (isinstance(horizon, (int, float)) and 0.0 <= horizon < 1.0):
+        raise ValueError(f"Invalid horizon: {horizon!r}; expected 0 <= horizon < 1 (0 = one step back)")
+
+
 class TowerOptimizer(Optimizer):
     """A base optimizer whose step size is learned by a tower of levels.
 
@@ -126,23 +143,32 @@ class TowerOptimizer(Optimizer):
 
     _rule: BaseRule
 
-    def __init__(self, params: Any, defaults: dict[str, Any], rule: BaseRule) -> None:
+    def __init__(self, params: Any, defaults: dict[str, Any]) -> None:
         _check_lr(defaults["lr"])
+        _check_horizon(defaults.get("horizon", 0.0))
         if defaults.get("granularity") not in GRANULARITIES:
             raise ValueError(f"Invalid granularity: {defaults.get('granularity')!r}; expected one of {GRANULARITIES}")
         defaults = dict(defaults)
         defaults["levels"] = _level_specs(defaults["levels"])
         if "hyper_level" in defaults:
             defaults["hyper_level"] = _level_spec(defaults["hyper_level"])
-        self._rule = rule
+        self._rule = self._make_rule()
         super().__init__(params, defaults)
 
     def __setstate__(self, state: dict[str, Any]) -> None:
         super().__setstate__(state)
+        self._rule = self._make_rule()  # not pickled by torch's Optimizer.__getstate__
         for group in self.param_groups:
             group.setdefault("retreat", True)
             group.setdefault("granularity", "group")
             group.setdefault("maximize", False)
+            group.setdefault("horizon", 0.0)
+            if _TOWER_KEY in group:
+                group[_TOWER_KEY].setdefault("retreated", torch.zeros_like(group[_TOWER_KEY]["step"]))
+
+    def _make_rule(self) -> BaseRule:
+        """The base rule of this optimizer class (rebuilt after unpickling)."""
+        raise NotImplementedError
 
     def __repr__(self) -> str:
         lines = [self.__class__.__name__ + " ("]
@@ -162,6 +188,8 @@ class TowerOptimizer(Optimizer):
             param_group["hyper_level"] = _level_spec(param_group["hyper_level"])
         if "lr" in param_group:
             _check_lr(param_group["lr"])
+        if "horizon" in param_group:
+            _check_horizon(param_group["horizon"])
         param_group.pop(_TOWER_KEY, None)  # learned state is never shared between groups
         super().add_param_group(param_group)
 
@@ -268,41 +296,57 @@ class TowerOptimizer(Optimizer):
         states = [self.state[p] for p in params]
         levels = _levels_of(group)
         ts = self._tower_state(group, params[0].device)
-        tensor_units = group["granularity"] == "tensor"
-        unit_of = [i for i, _ in indexed] if tensor_units else [0] * len(params)
-
         learns_hyper = "hyper_value" in ts
         if not levels and not learns_hyper:
-            finite = torch.stack([torch.isfinite(g).all() for g in grads]).all()
-            if not bool(finite):
-                ts["skipped"] += 1
-                return
-            ts["step"] += 1
-            self._rule.update(group, params, grads, states, [group["lr"]] * len(params))
+            self._plain_step(group, ts, params, grads, states)
             return
 
-        lr0 = torch.as_tensor(group["lr"], dtype=torch.float64, device=ts["step"].device).reshape(1)
-        a_prev = ts["prev_step"][:, 0] if levels else ts.get("prev_lr", lr0).expand(ts["log_step"].shape[0])
-        probes = [
-            self._rule.probe(group, p, g, st, a_prev[u])
-            for p, g, st, u in zip(params, grads, states, unit_of, strict=True)
-        ]
-        dot_t = torch.stack([pr[0] for pr in probes]).double()
-        slope_t = torch.stack([pr[1] for pr in probes]).double()
         units = ts["log_step"].shape[0]
-        unit_index = torch.tensor(unit_of, device=dot_t.device)
-        dot_u = torch.zeros(units, dtype=torch.float64, device=dot_t.device).index_add_(0, unit_index, dot_t)
-        slope_u = torch.zeros_like(dot_u).index_add_(0, unit_index, slope_t)
-        checks = [dot_u, slope_u]
-        if learns_hyper:
-            tangent_dots = torch.stack([torch.stack(pr[2]) for pr in probes]).double().sum(dim=0)
-            checks.append(tangent_dots)
+        unit_of = [i for i, _ in indexed] if group["granularity"] == "tensor" else [0] * len(params)
+        unit_index = torch.tensor(unit_of, device=ts["step"].device)
 
+        def per_unit(values: Sequence[Tensor]) -> Tensor:
+            stacked = torch.stack(list(values)).double()
+            return torch.zeros(units, dtype=torch.float64, device=stacked.device).index_add_(0, unit_index, stacked)
+
+        lr0 = torch.as_tensor(group["lr"], dtype=torch.float64, device=ts["step"].device).reshape(1)
+        a_prev = ts["prev_step"][:, 0] if levels else ts.get("prev_lr", lr0).expand(units)
+        horizon = float(group["horizon"])
+        steps_taken = int(ts["step"])
+        may_retreat = bool(group["retreat"]) and bool(levels) and 0 < steps_taken < RETREAT_WINDOW
+        exact = horizon == 0 or may_retreat
+
+        zero = torch.zeros((), dtype=torch.float64, device=ts["step"].device)
+        dot_u = slope_u = torch.zeros(units, dtype=torch.float64, device=zero.device)
+        tangent_dots = None
+        if exact or learns_hyper:
+            probes = [
+                self._rule.probe(group, p, g, st, a_prev[u], exact=exact)
+                for p, g, st, u in zip(params, grads, states, unit_of, strict=True)
+            ]
+            dot_u, slope_u = per_unit(pr[0] for pr in probes), per_unit(pr[1] for pr in probes)
+            if learns_hyper:
+                tangent_dots = torch.stack([torch.stack(pr[2]) for pr in probes]).double().sum(dim=0)
+        if horizon > 0 and levels:
+            # <g_s, D_{s-1}>: the gradient against the decaying trail of recent updates.
+            trail_dots = [
+                _chunks.dot(_chunks.flat(self._rule.loss_grad(group, p, g)), _chunks.flat(st["trail"]))
+                if "trail" in st
+                else zero
+                for p, g, st in zip(params, grads, states, strict=True)
+            ]
+            hyper_dot = per_unit(trail_dots)  # = a_prev * <g, d_prev> when horizon = 0
+        else:
+            hyper_dot = dot_u * a_prev
+
+        checks = [hyper_dot, slope_u, dot_u] + ([tangent_dots] if tangent_dots is not None else [])
         finite = torch.stack([torch.isfinite(c).all() for c in checks]).all()
+        if not exact:  # no dot products of the base were taken: check the gradients themselves
+            finite = finite & _grads_finite(grads)
         prev_slope = ts["prev_slope"].sum()
         rho = dot_u.sum() / prev_slope
-        retreat = (ts["step"] > 0) & (prev_slope > 0) & (rho < -1)
-        if not (group["retreat"] and levels):
+        retreat = (prev_slope > 0) & (rho < -1) & ~ts["retreated"].bool()
+        if not may_retreat:
             retreat = torch.zeros_like(retreat)
         skip_now, retreat_now = torch.stack([~finite, retreat]).tolist()
 
@@ -313,16 +357,63 @@ class TowerOptimizer(Optimizer):
             factor = torch.clamp(1.0 / (1.0 - rho), min=RETREAT_MIN_FACTOR)
             a_new = a_prev * factor
             for p, st, u in zip(params, states, unit_of, strict=True):
-                self._rule.retreat(group, p, st, a_prev[u], a_new[u])
+                _with_trail(st, p, lambda p=p, st=st, u=u: self._rule.retreat(group, p, st, a_prev[u], a_new[u]))
             ts["log_step"][:, 0] += factor.log()
             ts["prev_step"][:, 0] = a_new
             ts["retreats"] += 1
+            ts["retreated"].fill_(1)
             return
+        ts["retreated"].fill_(0)
 
-        if learns_hyper:
+        if tangent_dots is not None:
             hyper_step(ts, tangent_dots, a_prev.mean(), Level(**group["hyper_level"]))
             ts["prev_lr"] = lr0
-        a0 = tower_step(ts, levels, dot_u, group["lr"]) if levels else lr0.expand(units)
+        a0 = tower_step(ts, levels, hyper_dot, group["lr"]) if levels else lr0.expand(units)
         ts["prev_slope"].copy_(slope_u)
         ts["step"] += 1
-        self._rule.update(group, params, grads, states, [a0[u] for u in unit_of])
+        step_sizes = [a0[u] for u in range(units)]  # one tensor per unit: the fused kernel runs once per unit
+        update = lambda: self._rule.update(group, params, grads, states, [step_sizes[u] for u in unit_of])  # noqa: E731
+        if horizon > 0 and levels:
+            for p, st in zip(params, states, strict=True):
+                if "trail" not in st:
+                    st["trail"] = torch.zeros_like(p, memory_format=torch.preserve_format)
+                st["trail"].mul_(horizon)
+            _with_trails(states, params, update)
+        else:
+            update()
+
+    def _plain_step(
+        self,
+        group: dict[str, Any],
+        ts: dict[str, Tensor],
+        params: list[Tensor],
+        grads: list[Tensor],
+        states: list[dict[str, Any]],
+    ) -> None:
+        """Depth 0, nothing learned: the base optimizer itself, with non-finite steps skipped."""
+        if not bool(_grads_finite(grads)):
+            ts["skipped"] += 1
+            return
+        ts["step"] += 1
+        self._rule.update(group, params, grads, states, [group["lr"]] * len(params))
+
+
+def _grads_finite(grads: list[Tensor]) -> Tensor:
+    """Whether every gradient is finite: max-abs norms propagate inf and nan and never overflow."""
+    return torch.isfinite(torch.stack(torch._foreach_norm(grads, ord=math.inf))).all()
+
+
+def _with_trails(states: list[dict[str, Any]], params: list[Tensor], move: Callable[[], None]) -> None:
+    """Run ``move`` and add the displacement it causes to each ``trail``: ``D += w_before - w_after``."""
+    for p, st in zip(params, states, strict=True):
+        st["trail"].add_(p)
+    move()
+    for p, st in zip(params, states, strict=True):
+        st["trail"].sub_(p)
+
+
+def _with_trail(state: dict[str, Any], p: Tensor, move: Callable[[], None]) -> None:
+    if "trail" in state:
+        _with_trails([state], [p], move)
+    else:
+        move()

@@ -57,9 +57,9 @@ _INDEX = {c: i for i, c in enumerate(VOCAB)}
 _UNKNOWN = _INDEX["?"]
 
 CORPUS_CHARS = 200_000
-SEQ_LEN = 64
+SEQ_LEN = 32
 BATCH = 32
-EVAL_WINDOWS = 256
+EVAL_WINDOWS = 512
 
 
 def _docstrings(module_name: str) -> Iterator[str]:
@@ -141,8 +141,8 @@ def build_char_gru(seed: int) -> TaskInstance:
     """Next-character prediction with a one-layer GRU (hidden 128) on the docstring corpus.
 
     The first 90 % of the corpus trains, the last 10 % is held out. Minibatches are 32
-    windows of 64 characters at seeded random offsets; 300 steps. ``full_train_loss`` is
-    the mean cross-entropy (nats per character) over 256 evenly spaced training windows.
+    windows of 32 characters at seeded random offsets; 300 steps. ``full_train_loss`` is
+    the mean cross-entropy (nats per character) over 512 evenly spaced training windows.
     """
     data = _encoded()
     cut = int(data.numel() * 0.9)

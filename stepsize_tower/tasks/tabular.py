@@ -45,9 +45,8 @@ def build_logistic_cancer(seed: int) -> TaskInstance:
 
     def loss_fn(model: nn.Module, batch: Batch) -> Tensor:
         x, y = batch
-        linear = model[0] if isinstance(model, nn.Sequential) else model
-        logits = model(x).squeeze(-1)
-        return F.binary_cross_entropy_with_logits(logits, y) + 0.5 * LOGISTIC_L2 * linear.weight.pow(2).sum()
+        penalty = sum(p.pow(2).sum() for name, p in model.named_parameters() if name.endswith("weight"))
+        return F.binary_cross_entropy_with_logits(model(x).squeeze(-1), y) + 0.5 * LOGISTIC_L2 * penalty
 
     model = seeded_module(seed, lambda: nn.Sequential(nn.Linear(x_all.shape[1], 1)))
     return TaskInstance(
