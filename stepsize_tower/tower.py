@@ -313,7 +313,7 @@ class TowerOptimizer(Optimizer):
         a_prev = ts["prev_step"][:, 0] if levels else ts.get("prev_lr", lr0).expand(units)
         horizon = float(group["horizon"])
         steps_taken = int(ts["step"])
-        may_retreat = bool(group["retreat"]) and bool(levels) and 0 < steps_taken < RETREAT_WINDOW
+        may_retreat = bool(group["retreat"]) and bool(levels) and steps_taken < RETREAT_WINDOW
         exact = horizon == 0 or may_retreat
 
         zero = torch.zeros((), dtype=torch.float64, device=ts["step"].device)
@@ -328,14 +328,15 @@ class TowerOptimizer(Optimizer):
             if learns_hyper:
                 tangent_dots = torch.stack([torch.stack(pr[2]) for pr in probes]).double().sum(dim=0)
         if horizon > 0 and levels:
-            # <g_s, D_{s-1}>: the gradient against the decaying trail of recent updates.
+            # <g_s, D_{s-1}>: the gradient against the decaying trail of recent updates,
+            # D = Σ_j γ^(s-1-j) Δ_j, kept as its moving average E = (1 - γ) D.
             trail_dots = [
-                _chunks.dot(_chunks.flat(self._rule.loss_grad(group, p, g)), _chunks.flat(st["trail"]))
-                if "trail" in st
+                _chunks.dot(_chunks.flat(self._rule.loss_grad(group, p, g)), _chunks.flat(st["update_ema"]))
+                if "update_ema" in st
                 else zero
                 for p, g, st in zip(params, grads, states, strict=True)
             ]
-            hyper_dot = per_unit(trail_dots)  # = a_prev * <g, d_prev> when horizon = 0
+            hyper_dot = per_unit(trail_dots) / (1.0 - horizon)
         else:
             hyper_dot = dot_u * a_prev
 
@@ -356,8 +357,13 @@ class TowerOptimizer(Optimizer):
         if retreat_now:
             factor = torch.clamp(1.0 / (1.0 - rho), min=RETREAT_MIN_FACTOR)
             a_new = a_prev * factor
+            tracked = [(p, st["update_ema"]) for p, st in zip(params, states, strict=True) if "update_ema" in st]
+            for p, ema in tracked:  # the retreat rewrites the last update: fold the change into E
+                ema.add_(p, alpha=1.0 - horizon)
             for p, st, u in zip(params, states, unit_of, strict=True):
-                _with_trail(st, p, lambda p=p, st=st, u=u: self._rule.retreat(group, p, st, a_prev[u], a_new[u]))
+                self._rule.retreat(group, p, st, a_prev[u], a_new[u])
+            for p, ema in tracked:
+                ema.sub_(p, alpha=1.0 - horizon)
             ts["log_step"][:, 0] += factor.log()
             ts["prev_step"][:, 0] = a_new
             ts["retreats"] += 1
@@ -375,10 +381,9 @@ class TowerOptimizer(Optimizer):
         update = lambda: self._rule.update(group, params, grads, states, [step_sizes[u] for u in unit_of])  # noqa: E731
         if horizon > 0 and levels:
             for p, st in zip(params, states, strict=True):
-                if "trail" not in st:
-                    st["trail"] = torch.zeros_like(p, memory_format=torch.preserve_format)
-                st["trail"].mul_(horizon)
-            _with_trails(states, params, update)
+                if "update_ema" not in st:
+                    st["update_ema"] = torch.zeros_like(p, memory_format=torch.preserve_format)
+            _with_update_ema([st["update_ema"] for st in states], params, 1.0 - horizon, update)
         else:
             update()
 
@@ -403,17 +408,11 @@ def _grads_finite(grads: list[Tensor]) -> Tensor:
     return torch.isfinite(torch.stack(torch._foreach_norm(grads, ord=math.inf))).all()
 
 
-def _with_trails(states: list[dict[str, Any]], params: list[Tensor], move: Callable[[], None]) -> None:
-    """Run ``move`` and add the displacement it causes to each ``trail``: ``D += w_before - w_after``."""
-    for p, st in zip(params, states, strict=True):
-        st["trail"].add_(p)
+def _with_update_ema(emas: list[Tensor], params: list[Tensor], weight: float, move: Callable[[], None]) -> None:
+    """Run ``move`` and fold the update it makes into ``E <- (1 - weight) E + weight (w_before - w_after)``.
+
+    Two passes: ``E <- lerp(E, w_before, weight)``, then ``E <- E - weight w_after``.
+    """
+    torch._foreach_lerp_(emas, params, weight)
     move()
-    for p, st in zip(params, states, strict=True):
-        st["trail"].sub_(p)
-
-
-def _with_trail(state: dict[str, Any], p: Tensor, move: Callable[[], None]) -> None:
-    if "trail" in state:
-        _with_trails([state], [p], move)
-    else:
-        move()
+    torch._foreach_add_(emas, params, alpha=-weight)
