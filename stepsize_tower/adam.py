@@ -329,6 +329,6 @@ class TowerAdam(TowerOptimizer):
 
 
 class TowerAdamW(TowerAdam):
-    __doc__ = TowerAdam.__doc__
+    __doc__ = TowerAdam.__doc__  # type: ignore[assignment]
     _decoupled = True
     _default_weight_decay = 1e-2

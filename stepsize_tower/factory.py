@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from typing import Any
 
 from .adam import TowerAdam, TowerAdamW
@@ -12,7 +12,7 @@ from .tower import TowerOptimizer
 
 __all__ = ["BASES", "make_tower"]
 
-BASES: dict[str, type[TowerOptimizer]] = {"sgd": TowerSGD, "adam": TowerAdam, "adamw": TowerAdamW}
+BASES: dict[str, Callable[..., TowerOptimizer]] = {"sgd": TowerSGD, "adam": TowerAdam, "adamw": TowerAdamW}
 
 
 def make_tower(

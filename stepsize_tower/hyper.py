@@ -19,6 +19,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Sequence
+from typing import Any
 
 import torch
 from torch import Tensor
@@ -36,7 +37,7 @@ def init_hyper_state(values: Sequence[float], device: torch.device) -> dict[str,
     for v in values:
         if not 0.0 < v < 1.0:
             raise ValueError(f"Invalid hyperparameter to learn: {v}; a learned momentum or beta must be in (0, 1)")
-    kw = {"dtype": torch.float64, "device": device}
+    kw: dict[str, Any] = {"dtype": torch.float64, "device": device}
     value = torch.tensor(list(values), **kw)
     return {
         "hyper_value": value,

@@ -30,6 +30,7 @@ from __future__ import annotations
 import math
 from collections.abc import Sequence
 from dataclasses import dataclass
+from typing import Any
 
 import torch
 from torch import Tensor
@@ -128,7 +129,7 @@ def init_tower_state(levels: Sequence[Level], units: int, device: torch.device) 
       ``step``, ``skipped``, ``retreats`` []: counters; ``retreated`` []: 1 if the last call retreated.
     """
     d = len(levels)
-    kw = {"dtype": _STATE_DTYPE, "device": device}
+    kw: dict[str, Any] = {"dtype": _STATE_DTYPE, "device": device}
     log_step = torch.zeros(units, d, **kw)
     for k in range(1, d):
         log_step[:, k] = math.log(levels[k - 1].lr)
@@ -166,9 +167,10 @@ def tower_step(
 ) -> Tensor:
     """Update every level in place from ``<g_s, Δ>`` and return the new ``a_0`` [U].
 
-    ``update_dot`` has shape [U]: the new gradient against the last update (or the trail). On the first step (``ts["step"] == 0``) there is no previous
-    direction: the levels stay as they are and ``a_0 = lr * exp(u_0)``. Call it only for
-    steps that are taken (finite gradients, no retreat).
+    ``update_dot`` has shape [U]: the new gradient against the last update (or the trail).
+    On the first step (``ts["step"] == 0``) there is no previous direction: the levels stay
+    as they are and ``a_0 = lr * exp(u_0)``. Call it only for steps that are taken (finite
+    gradients, no retreat).
     """
     d = len(levels)
     u = ts["log_step"]

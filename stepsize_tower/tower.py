@@ -305,7 +305,7 @@ class TowerOptimizer(Optimizer):
         unit_of = [i for i, _ in indexed] if group["granularity"] == "tensor" else [0] * len(params)
         unit_index = torch.tensor(unit_of, device=ts["step"].device)
 
-        def per_unit(values: Sequence[Tensor]) -> Tensor:
+        def per_unit(values: Iterable[Tensor]) -> Tensor:
             stacked = torch.stack(list(values)).double()
             return torch.zeros(units, dtype=torch.float64, device=stacked.device).index_add_(0, unit_index, stacked)
 
