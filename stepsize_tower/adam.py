@@ -67,6 +67,8 @@ class AdamRule:
         ∂d/∂β2 = -m̂ / (sqrt(v̂) + eps)² · (∂v̂/∂β2) / (2 sqrt(v̂))
     """
 
+    normalized = True
+
     def __init__(self, decoupled: bool) -> None:
         self.decoupled = decoupled
 

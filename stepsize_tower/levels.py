@@ -18,7 +18,7 @@ decaying trail of updates ``D_{s-1} = Σ_j γ^(s-1-j) Δ_j`` (horizon γ > 0)::
     ĥ_{k+1} = -ĥ_k d_{k,s-1} a_{k,s-1}                 (= dL_s/du_{k,s-1})
     d_{k,s} = ĥ_k                                     (kind "sgd")
     d_{k,s} = m̂_k / (sqrt(v̂_k) + eps)                 (kind "adam", moments of ĥ_k)
-    u_{k-1,s} = u_{k-1,s-1} - a_{k,s} d_{k,s}          for k = D, D-1, ..., 1 (top-down)
+    u_{k-1,s} = u_{k-1,s-1} - clip(a_{k,s} d_{k,s}, ±1)   for k = D, D-1, ..., 1 (top-down)
 
 Top-down means level ``k`` uses the step size ``a_{k,s}`` that level ``k+1``
 produced in the same step. All state is float64 so that tiny hypergradients
@@ -36,8 +36,10 @@ import torch
 from torch import Tensor
 
 __all__ = [
+    "HYPERGRAD_BOUND",
     "LEVEL_KINDS",
     "LOG_STEP_BOUND",
+    "MAX_LOG_CHANGE",
     "Level",
     "current_step_sizes",
     "init_tower_state",
@@ -46,6 +48,13 @@ __all__ = [
 ]
 
 LEVEL_KINDS = ("sgd", "adam")
+
+#: Hypergradients are clamped to ``±HYPERGRAD_BOUND`` so that their squares (the moments of
+#: kind "adam") stay finite in float64 even when "sgd" levels feed on each other.
+HYPERGRAD_BOUND = 1e100
+
+#: No level changes its log step size by more than this in one step (a factor of e).
+MAX_LOG_CHANGE = 1.0
 
 #: Log step sizes are clamped to ``[-LOG_STEP_BOUND, LOG_STEP_BOUND]`` (about 1e-30 ... 1e30
 #: relative for level 0), which keeps every step size finite by construction.
@@ -126,6 +135,7 @@ def init_tower_state(levels: Sequence[Level], units: int, device: torch.device) 
       ``exp_avg``, ``exp_avg_sq`` [U, D]: moments of ``ĥ`` (kind "adam").
       ``hypergrad`` [U, D]: the last ``ĥ_1 .. ĥ_D`` (for inspection and tests).
       ``prev_slope`` [U]: ``<g_{s-1}, d_{0,s-1}>``, the last step's directional slope.
+      ``prev_gmax`` []: the largest absolute gradient entry of the last taken step.
       ``step``, ``skipped``, ``retreats`` []: counters; ``retreated`` []: 1 if the last call retreated.
     """
     d = len(levels)
@@ -141,6 +151,7 @@ def init_tower_state(levels: Sequence[Level], units: int, device: torch.device) 
         "exp_avg_sq": torch.zeros(units, d, **kw),
         "hypergrad": torch.zeros(units, d, **kw),
         "prev_slope": torch.zeros(units, **kw),
+        "prev_gmax": torch.zeros((), **kw),
         "step": torch.zeros((), **kw),
         "skipped": torch.zeros((), **kw),
         "retreats": torch.zeros((), **kw),
@@ -182,7 +193,7 @@ def tower_step(
     # Hypergradients of every level, from values stored at the previous step.
     h1 = -update_dot.to(u)
     chain = torch.cat([torch.ones_like(h1)[:, None], -prev_dir[:, :-1] * prev_step[:, 1:]], dim=1)
-    hyper = h1[:, None] * torch.cumprod(chain, dim=1)
+    hyper = (h1[:, None] * torch.cumprod(chain, dim=1)).clamp(-HYPERGRAD_BOUND, HYPERGRAD_BOUND)
 
     # Each level's direction from its hypergradient.
     count = ts["step"]  # number of level updates so far == steps taken before this one
@@ -201,7 +212,8 @@ def tower_step(
     new_u = u.clone()
     step_k: Tensor | float = levels[-1].lr
     for k in range(d, 0, -1):
-        new_u[:, k - 1] = (u[:, k - 1] - step_k * direction[:, k - 1]).clamp(-LOG_STEP_BOUND, LOG_STEP_BOUND)
+        change = (step_k * direction[:, k - 1]).clamp(-MAX_LOG_CHANGE, MAX_LOG_CHANGE)
+        new_u[:, k - 1] = (u[:, k - 1] - change).clamp(-LOG_STEP_BOUND, LOG_STEP_BOUND)
         step_k = new_u[:, k - 1].exp()
 
     # Commit only where a previous direction existed.

@@ -35,6 +35,8 @@ class SGDRule:
     for Nesterov) is kept as ``momentum_tangent``.
     """
 
+    normalized = False
+
     def hyper_initial(self, group: dict[str, Any]) -> list[float]:
         return [group["momentum"]] if group.get("learn_momentum") else []
 

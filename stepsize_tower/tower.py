@@ -42,7 +42,15 @@ from . import _chunks
 from .hyper import hyper_step, init_hyper_state
 from .levels import Level, current_step_sizes, init_tower_state, tower_step
 
-__all__ = ["GRANULARITIES", "RETREAT_MIN_FACTOR", "RETREAT_WINDOW", "BaseRule", "TowerOptimizer"]
+__all__ = [
+    "GRANULARITIES",
+    "RETREAT_AGAIN_RATIO",
+    "RETREAT_GROWTH",
+    "RETREAT_MIN_FACTOR",
+    "RETREAT_WINDOW",
+    "BaseRule",
+    "TowerOptimizer",
+]
 
 #: Smallest factor one retreat applies to the step size (retreats on later steps compound).
 RETREAT_MIN_FACTOR = 1e-4
@@ -50,7 +58,16 @@ RETREAT_MIN_FACTOR = 1e-4
 #: Retreats are considered during the first this-many taken steps only: the start-up phase in
 #: which the typed step size is still untested. Later, minibatch noise alone makes consecutive
 #: gradients oppose often enough that the test would cut good step sizes (measured: see README).
-RETREAT_WINDOW = 20
+RETREAT_WINDOW = 10
+
+#: Right after a retreat, the retried step is taken back again only if ``rho < -RETREAT_AGAIN_RATIO``:
+#: the new minibatch alone can make ``rho`` mildly negative, but not by this much.
+RETREAT_AGAIN_RATIO = 10.0
+
+#: At any step, a step of a base whose update grows with the gradient (SGD) is taken back when
+#: the largest gradient entry grew more than this factor ``r`` in one step. On a quadratic the gradient along the sharpest direction grows by
+#: ``|1 - a / a*|`` per step, so the step size is cut to ``a / (1 + r)``, just below ``a*``.
+RETREAT_GROWTH = 10.0
 
 GRANULARITIES = ("group", "tensor")
 
@@ -59,6 +76,10 @@ _TOWER_KEY = "tower"
 
 class BaseRule(Protocol):
     """Level 0: the direction ``d_0`` and the weight update of one base optimizer."""
+
+    #: True when the update is normalized (about ``a_0`` per coordinate whatever the gradient's
+    #: size, as in Adam): a growing gradient then does not make a growing update.
+    normalized: bool
 
     def needs_history(self, group: dict[str, Any]) -> bool:
         """Whether :meth:`probe` needs state kept from the previous step."""
@@ -164,7 +185,8 @@ class TowerOptimizer(Optimizer):
             group.setdefault("maximize", False)
             group.setdefault("horizon", 0.0)
             if _TOWER_KEY in group:
-                group[_TOWER_KEY].setdefault("retreated", torch.zeros_like(group[_TOWER_KEY]["step"]))
+                for key in ("retreated", "prev_gmax"):
+                    group[_TOWER_KEY].setdefault(key, torch.zeros_like(group[_TOWER_KEY]["step"]))
 
     def _make_rule(self) -> BaseRule:
         """The base rule of this optimizer class (rebuilt after unpickling)."""
@@ -340,30 +362,35 @@ class TowerOptimizer(Optimizer):
         else:
             hyper_dot = dot_u * a_prev
 
-        checks = [hyper_dot, slope_u, dot_u] + ([tangent_dots] if tangent_dots is not None else [])
+        gmax = _grad_max(grads)
+        checks = [hyper_dot, slope_u, dot_u, gmax] + ([tangent_dots] if tangent_dots is not None else [])
         finite = torch.stack([torch.isfinite(c).all() for c in checks]).all()
-        if not exact:  # no dot products of the base were taken: check the gradients themselves
-            finite = finite & _grads_finite(grads)
+        # Start-up test: the loss rose along the last step (secant ratio rho).
         prev_slope = ts["prev_slope"].sum()
         rho = dot_u.sum() / prev_slope
-        retreat = (prev_slope > 0) & (rho < -1) & ~ts["retreated"].bool()
+        threshold = torch.where(ts["retreated"].bool(), -RETREAT_AGAIN_RATIO, -1.0)
+        secant = (prev_slope > 0) & (rho < threshold)
         if not may_retreat:
-            retreat = torch.zeros_like(retreat)
+            secant = torch.zeros_like(secant)
+        # Any time: the largest gradient entry jumped by more than RETREAT_GROWTH in one step.
+        growth = gmax / ts["prev_gmax"]
+        blowup = (ts["prev_gmax"] > 0) & (growth > RETREAT_GROWTH)
+        if not (group["retreat"] and levels) or self._rule.normalized:
+            blowup = torch.zeros_like(blowup)
+        retreat = secant | blowup
         skip_now, retreat_now = torch.stack([~finite, retreat]).tolist()
 
         if skip_now:
             ts["skipped"] += 1
             return
         if retreat_now:
-            factor = torch.clamp(1.0 / (1.0 - rho), min=RETREAT_MIN_FACTOR)
+            factor = torch.where(secant, 1.0 / (1.0 - rho), 1.0 / (1.0 + growth))
+            factor = torch.clamp(factor, min=RETREAT_MIN_FACTOR, max=0.5)
             a_new = a_prev * factor
-            tracked = [(p, st["update_ema"]) for p, st in zip(params, states, strict=True) if "update_ema" in st]
-            for p, ema in tracked:  # the retreat rewrites the last update: fold the change into E
-                ema.add_(p, alpha=1.0 - horizon)
             for p, st, u in zip(params, states, unit_of, strict=True):
                 self._rule.retreat(group, p, st, a_prev[u], a_new[u])
-            for p, ema in tracked:
-                ema.sub_(p, alpha=1.0 - horizon)
+                if "update_ema" in st:  # the trail held the unstable steps: start it afresh
+                    st["update_ema"].zero_()
             ts["log_step"][:, 0] += factor.log()
             ts["prev_step"][:, 0] = a_new
             ts["retreats"] += 1
@@ -376,6 +403,7 @@ class TowerOptimizer(Optimizer):
             ts["prev_lr"] = lr0
         a0 = tower_step(ts, levels, hyper_dot, group["lr"]) if levels else lr0.expand(units)
         ts["prev_slope"].copy_(slope_u)
+        ts["prev_gmax"].copy_(gmax)
         ts["step"] += 1
         step_sizes = [a0[u] for u in range(units)]  # one tensor per unit: the fused kernel runs once per unit
         update = lambda: self._rule.update(group, params, grads, states, [step_sizes[u] for u in unit_of])  # noqa: E731
@@ -403,9 +431,14 @@ class TowerOptimizer(Optimizer):
         self._rule.update(group, params, grads, states, [group["lr"]] * len(params))
 
 
+def _grad_max(grads: list[Tensor]) -> Tensor:
+    """The largest absolute gradient entry (float64); inf or nan if any entry is. Never overflows."""
+    return torch.stack(torch._foreach_norm(grads, ord=math.inf)).max().double()
+
+
 def _grads_finite(grads: list[Tensor]) -> Tensor:
-    """Whether every gradient is finite: max-abs norms propagate inf and nan and never overflow."""
-    return torch.isfinite(torch.stack(torch._foreach_norm(grads, ord=math.inf))).all()
+    """Whether every gradient is finite."""
+    return torch.isfinite(_grad_max(grads))
 
 
 def _with_update_ema(emas: list[Tensor], params: list[Tensor], weight: float, move: Callable[[], None]) -> None:

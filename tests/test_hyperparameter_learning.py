@@ -15,7 +15,14 @@ import torch
 
 from stepsize_tower import TowerAdam, TowerAdamW, TowerSGD
 
-torch.set_default_dtype(torch.float64)
+
+@pytest.fixture(autouse=True)
+def _float64_by_default():
+    """These checks run in float64; restore the global default afterwards."""
+    previous = torch.get_default_dtype()
+    torch.set_default_dtype(torch.float64)
+    yield
+    torch.set_default_dtype(previous)
 
 
 def _problem(seed: int = 0):
