@@ -65,8 +65,10 @@ RETREAT_WINDOW = 10
 RETREAT_AGAIN_RATIO = 10.0
 
 #: At any step, a step of a base whose update grows with the gradient (SGD) is taken back when
-#: the largest gradient entry grew more than this factor ``r`` in one step. On a quadratic the gradient along the sharpest direction grows by
-#: ``|1 - a / a*|`` per step, so the step size is cut to ``a / (1 + r)``, just below ``a*``.
+#: the largest gradient entry grew more than this factor ``r`` in one step. On a quadratic the
+#: gradient along the sharpest direction grows by ``|1 - a / a*|`` per step, so the step size is
+#: cut to ``a / (1 + r)``, just below ``a*``. The trail of updates is cleared: it held the
+#: unstable steps.
 RETREAT_GROWTH = 10.0
 
 GRANULARITIES = ("group", "tensor")

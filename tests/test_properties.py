@@ -11,7 +11,6 @@ from __future__ import annotations
 import math
 from typing import Any
 
-import pytest
 import torch
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
@@ -128,14 +127,9 @@ def check_learned_state(opt: torch.optim.Optimizer) -> None:
             assert torch.isfinite(value).all(), (key, value)
 
 
-# Level kinds: "adam" levels (the default) must pass; any mix with plain-descent "sgd"
-# levels is held to the same properties but fails today (see SGD_LEVELS_XFAIL).
-SGD_LEVELS_XFAIL = pytest.mark.xfail(
-    strict=False,
-    reason="measured: with an 'sgd' level (lr ~0.1) and lr=1, ordinary N(0,1) gradients move log a_0 by "
-    "> 69 in one step (a_0 hits the 9.25e29 clamp) and the hypergradient chain overflows "
-    "(exp_avg_sq = inf within ~5-11 steps); see the pinned counterexamples below",
-)
+# Level kinds: "adam" levels (the default) and any mix with plain-descent "sgd" levels are held
+# to the same properties. Mixes with "sgd" levels used to overflow (their hypergradients feed on
+# each other); bounded level changes and clamped hypergradients fixed that.
 
 
 @SETTINGS
@@ -144,7 +138,6 @@ def test_step_sizes_and_learned_state_stay_positive_and_finite(cfg: dict[str, An
     check_stream(cfg, stream)
 
 
-@SGD_LEVELS_XFAIL
 @SETTINGS
 @given(cfg=configurations(), stream=gradient_streams())
 def test_step_sizes_and_learned_state_stay_positive_and_finite_with_sgd_levels(
@@ -165,7 +158,6 @@ def test_weights_stay_finite_for_bounded_gradients_and_lr_at_most_one(cfg: dict[
     check_bounded(cfg, stream)
 
 
-@SGD_LEVELS_XFAIL
 @SETTINGS
 @given(cfg=configurations(), stream=gradient_streams(allow_nonfinite=False))
 def test_weights_stay_finite_for_bounded_gradients_and_lr_at_most_one_with_sgd_levels(
@@ -188,7 +180,6 @@ def test_a_non_finite_gradient_changes_nothing(cfg: dict[str, Any], stream: list
     check_skip(cfg, stream, bad_at)
 
 
-@SGD_LEVELS_XFAIL
 @SETTINGS
 @given(cfg=configurations(), stream=gradient_streams(), bad_at=st.integers(0, 24))
 def test_a_non_finite_gradient_changes_nothing_with_sgd_levels(cfg: dict[str, Any], stream: list, bad_at: int) -> None:
@@ -231,19 +222,17 @@ def check_skip(cfg: dict[str, Any], stream: list, bad_at: int) -> None:
 
 
 # ---------------------------------------------------------------------------- pinned counterexamples
-# Found by longer random runs of the properties above (max_examples=800..1500); each is a
-# real defect, kept faithful and marked xfail with what was measured.
+# Found by longer random runs of the properties above (max_examples=800..1500); each was a
+# real defect (what was measured before the fix is in the docstring) and is now a regression test.
 
 STACKED = [Level("sgd", lr=0.1), Level("sgd", lr=0.1), Level("adam", lr=0.1)]
 
 
-@pytest.mark.xfail(
-    strict=False,
-    reason="measured: one finite 1e15-scale gradient sends a_0 to the clamp (9.25e29) in one step; the "
-    "hypergradient chain grows 1e16 -> 1e30 -> 1e57 -> 1e114, exp_avg_sq overflows to inf at step 4 and "
-    "every step size is nan at step 6 (weights nan)",
-)
 def test_finite_huge_gradient_keeps_stacked_sgd_levels_finite() -> None:
+    """Regression: measured before the fix: one finite 1e15-scale gradient sends a_0 to the clamp (9.25e29)
+    in one step; the hypergradient chain grows 1e16 -> 1e30 -> 1e57 -> 1e114, exp_avg_sq overflows to
+    inf at step 4 and every step size is nan at step 6 (weights nan)
+    """
     cfg = {
         "base": "adamw",
         "lr": 1.0,
@@ -259,13 +248,11 @@ def test_finite_huge_gradient_keeps_stacked_sgd_levels_finite() -> None:
     assert all(torch.isfinite(p).all() for p in params)
 
 
-@pytest.mark.xfail(
-    strict=False,
-    reason="measured: constant N(0,1) gradients, lr=1, levels [sgd 0.01, adam 0.1, sgd 0.1]: a_0 goes "
-    "1 -> 15 -> 9.25e29 at step 6, then 1e-30; hypergradients reach 1e162 and exp_avg_sq overflows to "
-    "inf at step 11 (weights reach 3e26)",
-)
 def test_bounded_gradients_keep_mixed_level_state_finite() -> None:
+    """Regression: measured before the fix: constant N(0,1) gradients, lr=1, levels [sgd 0.01, adam 0.1,
+    sgd 0.1]: a_0 goes 1 -> 15 -> 9.25e29 at step 6, then 1e-30; hypergradients reach 1e162 and
+    exp_avg_sq overflows to inf at step 11 (weights reach 3e26)
+    """
     cfg = {
         "base": "sgd",
         "lr": 1.0,
@@ -279,13 +266,11 @@ def test_bounded_gradients_keep_mixed_level_state_finite() -> None:
     run(cfg, [("normal", 0, 1.0)] * 14, bound=BOUND)
 
 
-@pytest.mark.xfail(
-    strict=False,
-    reason="measured: float32, lr=1, one sgd level (lr 0.1), weight decay 1e-2, gradients of scale 1-10: "
-    "a_0 jumps 3.21 -> 3.64e21 in one step, weights reach 7.9e22, and from then on every step is "
-    "skipped (the float32 dot product overflows): the optimizer never moves again",
-)
 def test_bounded_gradients_never_stall_the_optimizer() -> None:
+    """Regression: measured before the fix: float32, lr=1, one sgd level (lr 0.1), weight decay 1e-2,
+    gradients of scale 1-10: a_0 jumps 3.21 -> 3.64e21 in one step, weights reach 7.9e22, and from then
+    on every step is skipped (the float32 dot product overflows): the optimizer never moves again
+    """
     cfg = {
         "base": "sgd",
         "lr": 1.0,
