@@ -10,8 +10,8 @@ TOWER_ARGS = """        depth: number of levels above the base; 0 is a plain fix
         retreat: during the first steps, when the next gradient shows the loss rose along
             the last step, take it back and redo it with the secant step size (default: True).
         horizon: decay γ of the trail of recent updates that the step size's hypergradient
-            is taken against; 0 is the one-step-back hypergradient (default: the measured
-            :data:`stepsize_tower.defaults.DEFAULT_HORIZON`).
+            is taken against; 0 is the one-step-back hypergradient (default: measured,
+            :func:`stepsize_tower.defaults.default_horizon`: 0.99, or 0 for SGD with momentum).
         maximize: maximize the objective instead of minimizing it (default: False).
 
     .. note::

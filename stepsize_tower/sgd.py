@@ -10,7 +10,7 @@ from torch import Tensor
 
 from . import _chunks
 from ._docs import TOWER_ARGS
-from .defaults import DEFAULT_HORIZON, DEFAULT_HYPER_LEVEL
+from .defaults import DEFAULT_HYPER_LEVEL, default_horizon
 from .levels import Level, resolve_levels
 from .tower import TowerOptimizer
 
@@ -212,7 +212,7 @@ class TowerSGD(TowerOptimizer):
             "levels": resolve_levels(depth, levels),
             "granularity": granularity,
             "retreat": retreat,
-            "horizon": DEFAULT_HORIZON if horizon is None else horizon,
+            "horizon": default_horizon(momentum) if horizon is None else horizon,
             "learn_momentum": learn_momentum,
             "hyper_level": hyper_level or DEFAULT_HYPER_LEVEL,
         }

@@ -1,0 +1,109 @@
+"""The safeguards at both ends of the initial step size, pinned on small deterministic problems.
+
+* Too large (1e4 x a good step size): the first step would wreck the model; the retreat takes
+  it back and the run recovers without NaN, ending near a well-tuned fixed-rate run.
+* Too small (1e-6 x a good step size): the levels grow the step size by at least 1e4 x within
+  a few hundred steps.
+
+"Good step size" is the usual one for each problem: 1/L for gradient descent on a quadratic
+with largest curvature L, 1e-2 for Adam on a small network (common practice).
+"""
+
+from __future__ import annotations
+
+import math
+
+import pytest
+import torch
+
+from stepsize_tower import TowerAdam, TowerSGD
+
+
+def _quadratic():
+    """0.5 (w - w*)^T H (w - w*) with eigenvalues 0.1 ... 1 (largest curvature L = 1)."""
+    gen = torch.Generator().manual_seed(0)
+    q, _ = torch.linalg.qr(torch.randn(10, 10, dtype=torch.float64, generator=gen))
+    h = q @ torch.diag(torch.linspace(0.1, 1.0, 10, dtype=torch.float64)) @ q.T
+    target = torch.randn(10, dtype=torch.float64, generator=gen)
+
+    def loss(w: torch.Tensor) -> torch.Tensor:
+        e = w - target
+        return 0.5 * e @ h @ e
+
+    return loss
+
+
+def _network_task(seed: int = 0):
+    """A small tanh network fitting a smooth synthetic target (full batch, deterministic)."""
+    gen = torch.Generator().manual_seed(seed)
+    x = torch.randn(256, 8, generator=gen)
+    y = torch.sin(x @ torch.randn(8, 1, generator=gen))
+    torch.manual_seed(seed)
+    model = torch.nn.Sequential(torch.nn.Linear(8, 32), torch.nn.Tanh(), torch.nn.Linear(32, 1))
+
+    def loss() -> torch.Tensor:
+        return torch.nn.functional.mse_loss(model(x), y)
+
+    return model, loss
+
+
+def _train(opt: torch.optim.Optimizer, loss, steps: int) -> float:
+    for _ in range(steps):
+        opt.zero_grad()
+        value = loss()
+        value.backward()
+        opt.step()
+    with torch.no_grad():
+        return float(loss())
+
+
+def test_sgd_started_1e4_times_too_large_recovers_on_a_quadratic():
+    loss = _quadratic()
+    w = torch.zeros(10, dtype=torch.float64, requires_grad=True)
+    initial = float(loss(w.detach()))
+    opt = TowerSGD([w], lr=1e4)  # 1e4 x 1/L
+    final = _train(opt, lambda: loss(w), 300)
+    assert opt.retreats() >= 1
+    assert all(math.isfinite(a) and a > 0 for a in opt.step_sizes()[0])
+    assert math.isfinite(final)
+    assert final <= 1e-6 * initial  # reference: gradient descent at 1/L shrinks it by (1 - 0.1)^300 ≈ 2e-14
+
+
+@pytest.mark.parametrize("too_large", [10.0, 100.0])
+def test_adam_started_1e3_to_1e4_times_too_large_recovers_on_a_network(too_large):
+    model, loss = _network_task()
+    tuned_model, tuned_loss = _network_task()
+    tuned = _train(torch.optim.Adam(tuned_model.parameters(), lr=1e-2), tuned_loss, 300)  # reference: torch.optim
+    opt = TowerAdam(model.parameters(), lr=too_large)
+    final = _train(opt, loss, 300)
+    assert opt.retreats() >= 1
+    assert all(torch.isfinite(p).all() for p in model.parameters())
+    assert math.isfinite(final)
+    assert final <= max(1.25 * tuned, tuned + 0.01)  # the sensitivity benchmark's "good" rule
+
+
+def test_plain_fixed_rate_at_the_same_large_step_does_wreck_the_network():
+    """The recovery above is the safeguard's doing: without it the same start is ruined."""
+    model, loss = _network_task()
+    tuned_model, tuned_loss = _network_task()
+    tuned = _train(torch.optim.Adam(tuned_model.parameters(), lr=1e-2), tuned_loss, 300)
+    final = _train(torch.optim.Adam(model.parameters(), lr=100.0), loss, 300)
+    assert not final <= max(1.25 * tuned, tuned + 0.01)
+
+
+@pytest.mark.parametrize(
+    ("factory", "good"),
+    [
+        (lambda p, lr: TowerSGD(p, lr=lr), 1.0),
+        (lambda p, lr: TowerSGD(p, lr=lr, momentum=0.9), 0.1),
+        (lambda p, lr: TowerAdam(p, lr=lr), 1e-2),
+    ],
+    ids=["sgd", "momentum", "adam"],
+)
+def test_step_size_started_1e6_times_too_small_grows_1e4_times_within_300_steps(factory, good):
+    loss = _quadratic()
+    w = torch.zeros(10, dtype=torch.float64, requires_grad=True)
+    start = good * 1e-6
+    opt = factory([w], start)
+    _train(opt, lambda: loss(w), 300)
+    assert opt.step_sizes()[0][0] >= 1e4 * start
