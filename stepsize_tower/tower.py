@@ -1,31 +1,37 @@
 """The engine shared by every tower optimizer: one ``step`` for any base and any levels.
 
-A base (level 0, :class:`BaseRule`) knows how to move the weights and how to take the
-dot product of a new gradient with its previous direction; the levels
-(:mod:`stepsize_tower.levels`) turn that dot product into new step sizes. This module
-orders the two, handles skipped steps and retreats, and keeps every learned value in
-the optimizer's state.
+A base (level 0, :class:`BaseRule`) knows how to move the weights and how to take dot
+products of a new gradient with its directions; the levels (:mod:`stepsize_tower.levels`)
+turn those into new step sizes. This module orders the two, handles skipped steps and
+retreats, and keeps every learned value in the optimizer's state.
 
 Order inside one step ``s`` (per parameter group)::
 
-    1. probe: dot_s = <g_s, d_{0,s-1}>, slope_s = <g_s, d_{0,s}>     (base; reads only)
-    2. non-finite dot or slope        -> skip: nothing changes, ``skipped += 1``
-    3. rho = dot_s / slope_{s-1} < -1 -> retreat (see below), ``retreats += 1``
-    4. levels, top-down               -> a_{0,s}                      (levels.tower_step)
-    5. base update                    -> w_s = w_{s-1} - a_{0,s} d_{0,s}
+    1. measure: <g_s, Δ> against the last update (horizon 0) or the trail of updates,
+       and in the start-up window the secant ratio rho (base.probe; reads only)
+    2. anything non-finite                  -> skip: nothing changes, ``skipped += 1``
+    3. the loss rose, or the gradient blew up -> retreat (below), ``retreats += 1``
+    4. levels, top-down                     -> a_{0,s}                (levels.tower_step)
+    5. base update                          -> w_s = w_{s-1} - a_{0,s} d_{0,s}
 
 Retreat: along the last direction ``d = d_{0,s-1}``, the loss ``φ(a) = L(w_{s-2} - a d)``
-has slope ``φ'(0) = -slope_{s-1}`` at the start of the last step and
-``φ'(a_{0,s-1}) = -dot_s`` at its end. On a quadratic, ``rho = φ'(a)/φ'(0) < -1`` exactly
-when the loss rose, and the minimizer along ``d`` is ``a / (1 - rho)``. So the last step
-is taken back and redone with that secant step size (at least ``RETREAT_MIN_FACTOR``
-times the old one)::
+has slope ``φ'(0) = -<g_{s-1}, d>`` at the start of the last step and
+``φ'(a_{0,s-1}) = -<g_s, d>`` at its end. On a quadratic, ``rho = φ'(a)/φ'(0) < -1``
+exactly when the loss rose, and the minimizer along ``d`` is ``a / (1 - rho)``. So, during
+the first ``RETREAT_WINDOW`` steps, the last step is taken back and redone with that secant
+step size::
 
-    w <- w_{s-2} - a_new d,   a_new = a_{0,s-1} * max(1 / (1 - rho), RETREAT_MIN_FACTOR)
+    w <- w_{s-2} - a_new d,   a_new = a_{0,s-1} * clip(1 / (1 - rho), RETREAT_MIN_FACTOR, 1/2)
 
-The gradient ``g_s`` came from a rejected point, so it changes neither the base's
-moments nor the levels. This costs no extra forward pass and stops a step size that is
-orders of magnitude too large from wrecking the model in its first steps.
+Later, minibatch noise alone makes ``rho < -1`` too often; only bases whose update grows
+with the gradient (SGD) keep a guard, against divergence: when the largest gradient entry
+grows by ``r > RETREAT_GROWTH`` in one step, ``a_new = a_{0,s-1} / (1 + r)``. A retreat
+discards ``g_s`` (it came from a rejected point): neither the base's moments nor the levels
+see it. It costs no extra forward pass, and stops a step size that is orders of magnitude
+too large from wrecking the model in its first steps.
+
+Host reads: the step count and one skip/retreat flag per group are read from the device
+each step; all learned values stay tensors.
 """
 
 from __future__ import annotations
@@ -387,19 +393,9 @@ class TowerOptimizer(Optimizer):
             return
         if retreat_now:
             factor = torch.where(secant, 1.0 / (1.0 - rho), 1.0 / (1.0 + growth))
-            factor = torch.clamp(factor, min=RETREAT_MIN_FACTOR, max=0.5)
-            a_new = a_prev * factor
-            for p, st, u in zip(params, states, unit_of, strict=True):
-                self._rule.retreat(group, p, st, a_prev[u], a_new[u])
-                if "update_ema" in st:  # the trail held the unstable steps: start it afresh
-                    st["update_ema"].zero_()
-            ts["log_step"][:, 0] += factor.log()
-            ts["prev_step"][:, 0] = a_new
-            ts["retreats"] += 1
-            ts["retreated"].fill_(1)
+            self._retreat(group, ts, params, states, unit_of, a_prev, factor)
             return
         ts["retreated"].fill_(0)
-
         if tangent_dots is not None:
             hyper_step(ts, tangent_dots, a_prev.mean(), Level(**group["hyper_level"]))
             ts["prev_lr"] = lr0
@@ -407,15 +403,55 @@ class TowerOptimizer(Optimizer):
         ts["prev_slope"].copy_(slope_u)
         ts["prev_gmax"].copy_(gmax)
         ts["step"] += 1
-        step_sizes = [a0[u] for u in range(units)]  # one tensor per unit: the fused kernel runs once per unit
-        update = lambda: self._rule.update(group, params, grads, states, [step_sizes[u] for u in unit_of])  # noqa: E731
-        if horizon > 0 and levels:
-            for p, st in zip(params, states, strict=True):
-                if "update_ema" not in st:
-                    st["update_ema"] = torch.zeros_like(p, memory_format=torch.preserve_format)
-            _with_update_ema([st["update_ema"] for st in states], params, 1.0 - horizon, update)
-        else:
-            update()
+        self._advance(group, params, grads, states, unit_of, a0, horizon if levels else 0.0)
+
+    def _retreat(
+        self,
+        group: dict[str, Any],
+        ts: dict[str, Tensor],
+        params: list[Tensor],
+        states: list[dict[str, Any]],
+        unit_of: list[int],
+        a_prev: Tensor,
+        factor: Tensor,
+    ) -> None:
+        """Take the last step back and redo it with ``a_prev * factor`` (clipped); levels untouched."""
+        factor = torch.clamp(factor, min=RETREAT_MIN_FACTOR, max=0.5)
+        a_new = a_prev * factor
+        for p, st, u in zip(params, states, unit_of, strict=True):
+            self._rule.retreat(group, p, st, a_prev[u], a_new[u])
+            if "update_ema" in st:  # the trail held the unstable steps: start it afresh
+                st["update_ema"].zero_()
+        ts["log_step"][:, 0] += factor.log()
+        ts["prev_step"][:, 0] = a_new
+        ts["retreats"] += 1
+        ts["retreated"].fill_(1)
+
+    def _advance(
+        self,
+        group: dict[str, Any],
+        params: list[Tensor],
+        grads: list[Tensor],
+        states: list[dict[str, Any]],
+        unit_of: list[int],
+        a0: Tensor,
+        horizon: float,
+    ) -> None:
+        """The base update with step sizes ``a0`` [units], folding it into the trail when ``horizon > 0``."""
+        per_unit = [a0[u] for u in range(a0.shape[0])]  # one tensor per unit: one fused kernel call per unit
+        step_sizes = [per_unit[u] for u in unit_of]
+        if horizon == 0:
+            self._rule.update(group, params, grads, states, step_sizes)
+            return
+        for p, st in zip(params, states, strict=True):
+            if "update_ema" not in st:
+                st["update_ema"] = torch.zeros_like(p, memory_format=torch.preserve_format)
+        _with_update_ema(
+            [st["update_ema"] for st in states],
+            params,
+            1.0 - horizon,
+            lambda: self._rule.update(group, params, grads, states, step_sizes),
+        )
 
     def _plain_step(
         self,
