@@ -24,6 +24,7 @@ from dataclasses import dataclass
 from typing import Any
 
 import pytest
+import tiny_net
 import torch
 from torch import Tensor
 from torch.autograd import forward_ad as fwAD
@@ -35,28 +36,14 @@ N_IN, N_HIDDEN, N_OUT, BATCH = 4, 6, 2, 8
 
 
 def _init_params(seed: int = 0) -> list[Tensor]:
-    """Weights of a two-layer tanh network: [W1, b1, W2, b2]."""
-    gen = torch.Generator().manual_seed(seed)
-    shapes = [(N_HIDDEN, N_IN), (N_HIDDEN,), (N_OUT, N_HIDDEN), (N_OUT,)]
-    return [(0.5 * torch.randn(s, generator=gen, dtype=DTYPE)).requires_grad_() for s in shapes]
+    return tiny_net.init_params(N_IN, N_HIDDEN, N_OUT, seed)
 
 
 def _batches(n: int, seed: int = 1) -> list[tuple[Tensor, Tensor]]:
-    """A fixed stream of minibatches, a different one per step (index = step number)."""
-    gen = torch.Generator().manual_seed(seed)
-    teacher = torch.randn(N_OUT, N_IN, generator=gen, dtype=DTYPE)
-    out = []
-    for _ in range(n):
-        x = torch.randn(BATCH, N_IN, generator=gen, dtype=DTYPE)
-        y = torch.sin(x @ teacher.T) + 0.1 * torch.randn(BATCH, N_OUT, generator=gen, dtype=DTYPE)
-        out.append((x, y))
-    return out
+    return tiny_net.batches(n, N_IN, N_OUT, BATCH, seed)
 
 
-def _data_loss(ws: list[Tensor], batch: tuple[Tensor, Tensor]) -> Tensor:
-    w1, b1, w2, b2 = ws
-    x, y = batch
-    return ((torch.tanh(x @ w1.T + b1) @ w2.T + b2 - y) ** 2).mean()
+_data_loss = tiny_net.mse_loss
 
 
 # ----------------------------------------------------------------------------- bases
