@@ -370,9 +370,14 @@ class TowerOptimizer(Optimizer):
         else:
             hyper_dot = dot_u * a_prev
 
-        gmax = _grad_max(grads)
+        # Every dot product above contains a gradient, and inf * 0 = nan: a non-finite gradient
+        # always shows in them. The largest entry is only needed by the growth guard.
+        guard = bool(group["retreat"]) and bool(levels) and not self._rule.normalized
+        gmax = _grad_max(grads) if guard else ts["prev_gmax"]
         checks = [hyper_dot, slope_u, dot_u, gmax] + ([tangent_dots] if tangent_dots is not None else [])
         finite = torch.stack([torch.isfinite(c).all() for c in checks]).all()
+        if not (exact or learns_hyper) and any("update_ema" not in st for st in states):
+            finite = finite & _grads_finite(grads)  # no trail yet: no dot product saw the gradient
         # Start-up test: the loss rose along the last step (secant ratio rho).
         prev_slope = ts["prev_slope"].sum()
         rho = dot_u.sum() / prev_slope
@@ -383,7 +388,7 @@ class TowerOptimizer(Optimizer):
         # Any time: the largest gradient entry jumped by more than RETREAT_GROWTH in one step.
         growth = gmax / ts["prev_gmax"]
         blowup = (ts["prev_gmax"] > 0) & (growth > RETREAT_GROWTH)
-        if not (group["retreat"] and levels) or self._rule.normalized:
+        if not guard:
             blowup = torch.zeros_like(blowup)
         retreat = secant | blowup
         skip_now, retreat_now = torch.stack([~finite, retreat]).tolist()

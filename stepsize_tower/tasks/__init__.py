@@ -16,17 +16,21 @@ from __future__ import annotations
 
 from .base import Batch, LossFn, TaskInstance, TaskSpec
 from .charlm import build_char_gru
+from .compose import DATASETS, MODELS, compose_task
 from .digits import build_cnn_digits, build_mlp_digits
 from .tabular import build_least_squares_raw, build_logistic_cancer
 from .train import TrainResult, train
 
 __all__ = [
+    "DATASETS",
+    "MODELS",
     "TASKS",
     "Batch",
     "LossFn",
     "TaskInstance",
     "TaskSpec",
     "TrainResult",
+    "compose_task",
     "get_task",
     "task_names",
     "train",
@@ -43,8 +47,23 @@ TASKS: dict[str, TaskSpec] = {
         TaskSpec("mlp_digits", "ReLU MLP on 8x8 digits", build_mlp_digits),
         TaskSpec("cnn_digits", "small convolutional net on 8x8 digits", build_cnn_digits),
         TaskSpec("char_gru", "character-level GRU language model on Python docstrings", build_char_gru),
+        TaskSpec("mlp_wine", "ReLU MLP on the wine set (178 rows, 3 classes)", lambda seed: _composed("wine", seed, 32)),
+        TaskSpec(
+            "linreg_diabetes",
+            "linear regression on the diabetes set (442 rows)",
+            lambda seed: compose_task("diabetes", "linear", seed, batch_size=32),
+        ),
+        TaskSpec(
+            "mlp_clusters",
+            "ReLU MLP on 40 000 generated warped-cluster rows (8 classes)",
+            lambda seed: _composed("twisted_clusters", seed, 128),
+        ),
     )
 }
+
+
+def _composed(dataset: str, seed: int, batch_size: int) -> TaskInstance:
+    return compose_task(dataset, "mlp", seed, batch_size=batch_size)
 
 
 def task_names() -> list[str]:

@@ -9,7 +9,7 @@ data in identical order.
 from __future__ import annotations
 
 from collections.abc import Callable, Iterator
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import torch
 from torch import Tensor, nn
@@ -46,6 +46,10 @@ class TaskInstance:
             subset), in eval mode, without gradients; ``nan``/``inf`` when diverged.
         test_loss: the same on held-out data.
         default_steps: the step budget the task was sized for.
+        metrics: further evaluators by name (such as ``test_accuracy``), each taking the
+            model and returning a float; empty for tasks that have none.
+        steps_per_epoch: full minibatches per pass over the training set, when the task
+            has a finite training set (None for sampled streams).
     """
 
     name: str
@@ -55,6 +59,8 @@ class TaskInstance:
     full_train_loss: Callable[[nn.Module], float]
     test_loss: Callable[[nn.Module], float]
     default_steps: int
+    metrics: dict[str, Callable[[nn.Module], float]] = field(default_factory=dict)
+    steps_per_epoch: int | None = None
 
 
 @dataclass(frozen=True)

@@ -4,14 +4,19 @@ from __future__ import annotations
 
 import math
 import time
+from collections.abc import Callable
 from dataclasses import dataclass
+from typing import Any
 
 import torch
 from torch.optim import Optimizer
 
 from .base import TaskInstance
 
-__all__ = ["TrainResult", "train"]
+__all__ = ["StepCallback", "TrainResult", "train"]
+
+#: ``on_step(step, loss)``: called after optimizer step ``step`` (1-based) with that step's minibatch loss.
+StepCallback = Callable[[int, float], None]
 
 
 @dataclass(frozen=True)
@@ -37,12 +42,28 @@ def _weights_finite(model: torch.nn.Module) -> bool:
     return all(bool(torch.isfinite(p).all()) for p in model.parameters())
 
 
-def train(task: TaskInstance, optimizer: Optimizer, steps: int) -> TrainResult:
+def train(
+    task: TaskInstance,
+    optimizer: Optimizer,
+    steps: int,
+    *,
+    scheduler: Any | None = None,
+    on_step: StepCallback | None = None,
+) -> TrainResult:
     """Take ``steps`` optimizer steps on ``task.model`` with ``task.batches()``.
 
     A non-finite minibatch loss is handed to the optimizer like any other (a safeguarded
     optimizer may skip it); the run stops early only once the weights themselves are no
     longer finite.
+
+    Args:
+        task: the task instance (its model is trained in place).
+        optimizer: any ``torch.optim.Optimizer``.
+        steps: the step budget.
+        scheduler: an optional ``torch.optim.lr_scheduler`` object, stepped after every
+            optimizer step.
+        on_step: an optional callback ``on_step(step, loss)`` run after every step (and
+            after the scheduler); its time counts in ``seconds``.
     """
     model = task.model
     initial = task.full_train_loss(model)
@@ -55,8 +76,13 @@ def train(task: TaskInstance, optimizer: Optimizer, steps: int) -> TrainResult:
         loss = task.loss_fn(model, next(batches))
         loss.backward()
         optimizer.step()
+        if scheduler is not None:
+            scheduler.step()
         done += 1
-        if not math.isfinite(loss.item()) and not _weights_finite(model):
+        value = loss.item()
+        if on_step is not None:
+            on_step(done, value)
+        if not math.isfinite(value) and not _weights_finite(model):
             break
     seconds = time.perf_counter() - start
     final = task.full_train_loss(model) if _weights_finite(model) else math.nan
