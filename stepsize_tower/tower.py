@@ -25,7 +25,7 @@ step size::
 
 Later, minibatch noise alone makes ``rho < -1`` too often; only bases whose update grows
 with the gradient (SGD) keep a guard, against divergence: when the largest gradient entry
-grows by ``r > RETREAT_GROWTH`` in one step, ``a_new = a_{0,s-1} / (1 + r)``. A retreat
+exceeds ``r > RETREAT_GROWTH`` times the largest seen so far, ``a_new = a_{0,s-1} / (1 + r)``. A retreat
 discards ``g_s`` (it came from a rejected point): neither the base's moments nor the levels
 see it. It costs no extra forward pass, and stops a step size that is orders of magnitude
 too large from wrecking the model in its first steps.
@@ -71,9 +71,10 @@ RETREAT_WINDOW = 10
 RETREAT_AGAIN_RATIO = 10.0
 
 #: At any step, a step of a base whose update grows with the gradient (SGD) is taken back when
-#: the largest gradient entry grew more than this factor ``r`` in one step. On a quadratic the
-#: gradient along the sharpest direction grows by ``|1 - a / a*|`` per step, so the step size is
-#: cut to ``a / (1 + r)``, just below ``a*``. The trail of updates is cleared: it held the
+#: the largest gradient entry exceeds this factor ``r`` times the largest one seen so far in the
+#: run (a divergence: near convergence, gradients far below the peak may jump by 10x harmlessly).
+#: On a quadratic the gradient along the sharpest direction grows by ``|1 - a / a*|`` per step,
+#: so the step size is cut to ``a / (1 + r)``. The trail of updates is cleared: it held the
 #: unstable steps.
 RETREAT_GROWTH = 10.0
 
@@ -193,7 +194,7 @@ class TowerOptimizer(Optimizer):
             group.setdefault("maximize", False)
             group.setdefault("horizon", 0.0)
             if _TOWER_KEY in group:
-                for key in ("retreated", "prev_gmax"):
+                for key in ("retreated", "prev_gmax", "peak_gmax"):
                     group[_TOWER_KEY].setdefault(key, torch.zeros_like(group[_TOWER_KEY]["step"]))
 
     def _make_rule(self) -> BaseRule:
@@ -385,9 +386,9 @@ class TowerOptimizer(Optimizer):
         secant = (prev_slope > 0) & (rho < threshold)
         if not may_retreat:
             secant = torch.zeros_like(secant)
-        # Any time: the largest gradient entry jumped by more than RETREAT_GROWTH in one step.
-        growth = gmax / ts["prev_gmax"]
-        blowup = (ts["prev_gmax"] > 0) & (growth > RETREAT_GROWTH)
+        # Any time: the largest gradient entry exceeds RETREAT_GROWTH x the largest seen so far.
+        growth = gmax / ts["peak_gmax"]
+        blowup = (ts["peak_gmax"] > 0) & (growth > RETREAT_GROWTH)
         if not guard:
             blowup = torch.zeros_like(blowup)
         retreat = secant | blowup
@@ -407,6 +408,7 @@ class TowerOptimizer(Optimizer):
         a0 = tower_step(ts, levels, hyper_dot, group["lr"]) if levels else lr0.expand(units)
         ts["prev_slope"].copy_(slope_u)
         ts["prev_gmax"].copy_(gmax)
+        torch.maximum(ts["peak_gmax"], gmax, out=ts["peak_gmax"])
         ts["step"] += 1
         self._advance(group, params, grads, states, unit_of, a0, horizon if levels else 0.0)
 

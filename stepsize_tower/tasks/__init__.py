@@ -47,7 +47,9 @@ TASKS: dict[str, TaskSpec] = {
         TaskSpec("mlp_digits", "ReLU MLP on 8x8 digits", build_mlp_digits),
         TaskSpec("cnn_digits", "small convolutional net on 8x8 digits", build_cnn_digits),
         TaskSpec("char_gru", "character-level GRU language model on Python docstrings", build_char_gru),
-        TaskSpec("mlp_wine", "ReLU MLP on the wine set (178 rows, 3 classes)", lambda seed: _composed("wine", seed, 32)),
+        TaskSpec(
+            "mlp_wine", "ReLU MLP on the wine set (178 rows, 3 classes)", lambda seed: _composed("wine", seed, 32)
+        ),
         TaskSpec(
             "linreg_diabetes",
             "linear regression on the diabetes set (442 rows)",
