@@ -4,7 +4,7 @@ VENV   ?= .venv
 PY     := $(VENV)/bin/python
 STAMP  := $(VENV)/.installed
 
-.PHONY: venv demo test test-all lint typecheck bench sensitivity clean
+.PHONY: venv demo demo-script test test-all lint typecheck bench sensitivity clean
 
 $(STAMP): pyproject.toml
 	$(PYTHON) -m venv $(VENV)
@@ -17,6 +17,10 @@ $(STAMP): pyproject.toml
 venv: $(STAMP)
 
 demo: $(STAMP)
+	$(VENV)/bin/stepsize-tower run recipes/quickstart.yaml --out runs/quickstart
+	$(VENV)/bin/stepsize-tower report runs/quickstart
+
+demo-script: $(STAMP)
 	$(PY) experiments/quickstart.py
 
 test: $(STAMP)
@@ -26,8 +30,8 @@ test-all: $(STAMP)
 	$(PY) -m pytest -q -p no:cacheprovider -m ""
 
 lint: $(STAMP)
-	$(PY) -m ruff check stepsize_tower tests experiments
-	$(PY) -m ruff format --check stepsize_tower tests experiments
+	$(PY) -m ruff check stepsize_tower tests experiments recipes
+	$(PY) -m ruff format --check stepsize_tower tests experiments recipes
 
 typecheck: $(STAMP)
 	$(PY) -m mypy
@@ -36,7 +40,7 @@ bench: $(STAMP)
 	$(PY) experiments/step_cost.py
 
 sensitivity: $(STAMP)
-	$(PY) experiments/sensitivity.py
+	$(PY) experiments/sensitivity.py --seeds 0 1 2 --tasks logreg_cancer lsq_raw mlp_digits cnn_digits char_gru
 
 clean:
 	rm -rf $(VENV) experiments/out runs *.egg-info
