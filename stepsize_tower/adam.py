@@ -8,16 +8,13 @@ from typing import Any
 import torch
 from torch import Tensor
 
-from . import _chunks
+from . import _chunks, _fused
 from ._docs import TOWER_ARGS
 from .defaults import DEFAULT_HORIZON, DEFAULT_HYPER_LEVEL
 from .levels import Level, resolve_levels
 from .tower import TowerOptimizer
 
 __all__ = ["AdamRule", "TowerAdam", "TowerAdamW"]
-
-_FUSED_DEVICES = ("cpu", "cuda")
-
 
 Beta = float | Tensor
 
@@ -189,13 +186,7 @@ class AdamRule:
                 st[key] = value.to(g.dtype)
 
     def _use_fused(self, group: dict[str, Any], params: list[Tensor]) -> bool:
-        fused = group.get("fused")
-        if fused is False or group.get("learn_betas"):
-            return False
-        return (
-            all(p.device.type in _FUSED_DEVICES and p.dtype.is_floating_point for p in params)
-            and len({(p.device, p.dtype) for p in params}) == 1
-        )
+        return not group.get("learn_betas") and _fused.fused_applies(group, params)
 
     def _update_fused(
         self,
@@ -208,14 +199,9 @@ class AdamRule:
         """One pass of torch's fused Adam kernel per distinct step size (one call per group by default)."""
         beta1, beta2 = group["betas"]
         kernel = torch._fused_adamw_ if self.decoupled else torch._fused_adam_
-        buckets: dict[int, list[int]] = {}
-        for i, a in enumerate(step_sizes):
-            buckets.setdefault(id(a), []).append(i)
-        for idx in buckets.values():
-            a = step_sizes[idx[0]]
+        for lr, idx in _fused.by_step_size(step_sizes):
             steps = [states[i]["step"] for i in idx]
             torch._foreach_add_(steps, 1)
-            lr = a if isinstance(a, Tensor) else torch.tensor(float(a), dtype=torch.float64)
             kernel(
                 [params[i] for i in idx],
                 [grads[i] for i in idx],

