@@ -8,7 +8,8 @@ TOWER_ARGS = """        depth: number of levels above the base; 0 is a plain fix
         granularity: ``"group"`` learns one step size per parameter group, ``"tensor"``
             one per parameter tensor (default: ``"group"``).
         retreat: during the first steps, when the next gradient shows the loss rose along
-            the last step, take it back and redo it with the secant step size (default: True).
+            the last step, take it back and redo it with the secant step size; for SGD,
+            also at any step when the gradient blows up past 10x its peak (default: True).
         horizon: decay γ of the trail of recent updates that the step size's hypergradient
             is taken against; 0 is the one-step-back hypergradient (default: measured,
             :func:`stepsize_tower.defaults.default_horizon`: 0.99, or 0 for SGD with momentum).

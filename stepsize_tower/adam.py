@@ -240,16 +240,18 @@ class TowerAdam(TowerOptimizer):
          v_s = \beta_2 v_{{s-1}} + (1-\beta_2) g_s^2 \\
         &d_{{0,s}} = \frac{{m_s / (1-\beta_1^s)}}{{\sqrt{{v_s/(1-\beta_2^s)}} + \epsilon}}
          \quad(\text{{AdamW: }} + \lambda w_{{s-1}} \text{{ and no }} \lambda \text{{ in }} g_s) \\
-        &\hat h_{{1,s}} = -a_{{0,s-1}}\,\langle g_s, d_{{0,s-1}}\rangle
-         \qquad \text{{(the hypergradient of }} \log a_0 \text{{)}} \\
-        &\text{{levels }} D \dots 1:\; \log a_{{k-1,s}} = \log a_{{k-1,s-1}} - a_{{k,s}}\, d_{{k,s}} \\
+        &\hat h_{{1,s}} = -\Big\langle g_s,\; \sum_{{j<s}} \gamma^{{s-1-j}} a_{{0,j}} d_{{0,j}} \Big\rangle
+         \qquad \text{{(hypergradient of }} \log a_0 \text{{; }} \gamma = 0 \text{{: one step back)}} \\
+        &\text{{levels }} D \dots 1:\; \log a_{{k-1,s}} = \log a_{{k-1,s-1}}
+         - \mathrm{{clip}}(a_{{k,s}}\, d_{{k,s}}, \pm 1) \\
         &w_s = w_{{s-1}} - a_{{0,s}}\, d_{{0,s}}, \qquad a_{{0,s}} = \mathrm{{lr}} \cdot e^{{u_{{0,s}}}}
         \end{{aligned}}
 
     With ``depth=0`` this is exactly :class:`torch.optim.Adam` (``TowerAdamW``:
     :class:`torch.optim.AdamW`). The update uses torch's fused Adam kernel where it
-    applies (``fused=None``); the previous direction is recomputed from the moments, so
-    the tower adds no parameter-sized buffer.
+    applies (``fused=None``). The trail of updates (``horizon > 0``) is one parameter-sized
+    buffer; with ``horizon=0`` the previous direction is recomputed from the moments and the
+    tower adds none.
 
     Args:
         params: iterable of parameters or parameter groups.

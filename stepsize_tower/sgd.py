@@ -152,9 +152,10 @@ class TowerSGD(TowerOptimizer):
         &g_s = \nabla L_s(w_{{s-1}}) + \lambda w_{{s-1}}, \qquad
          b_s = \mu b_{{s-1}} + (1-\tau) g_s, \qquad
          d_{{0,s}} = g_s \;|\; b_s \;|\; g_s + \mu b_s \\
-        &\hat h_{{1,s}} = -a_{{0,s-1}}\,\langle g_s, d_{{0,s-1}}\rangle
-         \qquad \text{{(the hypergradient of }} \log a_0 \text{{)}} \\
-        &\text{{levels }} D \dots 1:\; \log a_{{k-1,s}} = \log a_{{k-1,s-1}} - a_{{k,s}}\, d_{{k,s}}
+        &\hat h_{{1,s}} = -\Big\langle g_s,\; \sum_{{j<s}} \gamma^{{s-1-j}} a_{{0,j}} d_{{0,j}} \Big\rangle
+         \qquad \text{{(hypergradient of }} \log a_0 \text{{; }} \gamma = 0 \text{{: one step back)}} \\
+        &\text{{levels }} D \dots 1:\; \log a_{{k-1,s}} = \log a_{{k-1,s-1}}
+         - \mathrm{{clip}}(a_{{k,s}}\, d_{{k,s}}, \pm 1)
          \qquad\text{{(see }} \texttt{{stepsize\_tower.levels}} \text{{)}} \\
         &w_s = w_{{s-1}} - a_{{0,s}}\, d_{{0,s}}, \qquad a_{{0,s}} = \mathrm{{lr}} \cdot e^{{u_{{0,s}}}}
         \end{{aligned}}
