@@ -4,7 +4,7 @@ VENV   ?= .venv
 PY     := $(VENV)/bin/python
 STAMP  := $(VENV)/.installed
 
-.PHONY: venv demo demo-script test test-all lint typecheck bench sensitivity clean
+.PHONY: venv extras demo demo-script test test-all lint typecheck bench sensitivity clean
 
 $(STAMP): pyproject.toml
 	$(PYTHON) -m venv $(VENV)
@@ -15,6 +15,10 @@ $(STAMP): pyproject.toml
 	touch $(STAMP)
 
 venv: $(STAMP)
+
+# Optional framework integrations (Lightning, Hugging Face); their tests skip without them.
+extras: $(STAMP)
+	$(PY) -m pip install -q -e ".[lightning,hf]" torch==2.13.0
 
 demo: $(STAMP)
 	$(VENV)/bin/stepsize-tower run recipes/quickstart.yaml --out runs/quickstart

@@ -49,6 +49,7 @@ from .hyper import hyper_step, init_hyper_state
 from .levels import Level, current_step_sizes, init_tower_state, tower_step
 
 __all__ = [
+    "EFFECTIVE_LR_KEY",
     "GRANULARITIES",
     "RETREAT_AGAIN_RATIO",
     "RETREAT_GROWTH",
@@ -79,6 +80,13 @@ RETREAT_AGAIN_RATIO = 10.0
 RETREAT_GROWTH = 10.0
 
 GRANULARITIES = ("group", "tensor")
+
+#: Group key under which every step publishes the level-0 step size in effect, a 0-dim float64
+#: tensor (no host read): ``group["lr"] * exp(u_0)`` as used by the last taken step, or after a
+#: retreat the step size the retried step was redone with (geometric mean over the group's
+#: units with ``granularity="tensor"``). Absent until the group's first step; skipped steps
+#: leave it unchanged. Monitors read it instead of ``group["lr"]``, the scheduler's outer factor.
+EFFECTIVE_LR_KEY = "effective_lr"
 
 _TOWER_KEY = "tower"
 
@@ -206,7 +214,7 @@ class TowerOptimizer(Optimizer):
         for i, group in enumerate(self.param_groups):
             lines.append(f"Parameter Group {i}")
             for key in sorted(group):
-                if key not in ("params", _TOWER_KEY):
+                if key not in ("params", _TOWER_KEY, EFFECTIVE_LR_KEY):
                     lines.append(f"    {key}: {group[key]}")
         lines.append(")")
         return "\n".join(lines)
@@ -231,6 +239,9 @@ class TowerOptimizer(Optimizer):
             if ts is not None and group["params"]:
                 device = group["params"][0].device
                 group[_TOWER_KEY] = {k: v.to(device) for k, v in ts.items()}
+            eff = group.get(EFFECTIVE_LR_KEY)
+            if isinstance(eff, Tensor) and group["params"]:
+                group[EFFECTIVE_LR_KEY] = eff.to(group["params"][0].device)
 
     # ------------------------------------------------------------------ accessors
 
@@ -406,6 +417,7 @@ class TowerOptimizer(Optimizer):
             hyper_step(ts, tangent_dots, a_prev.mean(), Level(**group["hyper_level"]))
             ts["prev_lr"] = lr0
         a0 = tower_step(ts, levels, hyper_dot, group["lr"]) if levels else lr0.expand(units)
+        _publish_effective_lr(group, a0)
         ts["prev_slope"].copy_(slope_u)
         ts["prev_gmax"].copy_(gmax)
         torch.maximum(ts["peak_gmax"], gmax, out=ts["peak_gmax"])
@@ -433,6 +445,7 @@ class TowerOptimizer(Optimizer):
         ts["prev_step"][:, 0] = a_new
         ts["retreats"] += 1
         ts["retreated"].fill_(1)
+        _publish_effective_lr(group, a_new)
 
     def _advance(
         self,
@@ -473,7 +486,16 @@ class TowerOptimizer(Optimizer):
             ts["skipped"] += 1
             return
         ts["step"] += 1
+        _publish_effective_lr(
+            group, torch.as_tensor(group["lr"], dtype=torch.float64, device=ts["step"].device).reshape(1)
+        )
         self._rule.update(group, params, grads, states, [group["lr"]] * len(params))
+
+
+def _publish_effective_lr(group: dict[str, Any], a0: Tensor) -> None:
+    """Store the level-0 step size ``a0`` [units] under ``group[EFFECTIVE_LR_KEY]`` (a new 0-dim tensor)."""
+    value = a0[0] if a0.shape[0] == 1 else a0.log().mean().exp()
+    group[EFFECTIVE_LR_KEY] = value.detach().to(torch.float64).clone()
 
 
 def _grad_max(grads: list[Tensor]) -> Tensor:
