@@ -14,6 +14,14 @@ TOWER_ARGS = """        depth: number of levels above the base; 0 is a plain fix
             is taken against; 0 is the one-step-back hypergradient (default: measured,
             :func:`stepsize_tower.defaults.default_horizon`: 0.99, or 0 for SGD with momentum).
         maximize: maximize the objective instead of minimizing it (default: False).
+        sharded: the group's parameters are split over the ranks of the default process
+            group (``torch.distributed.optim.ZeroRedundancyOptimizer``, FSDP2
+            ``fully_shard``): every dot product (and the largest gradient entry, and the
+            finiteness test) is all-reduced across ranks before the step size moves, so all
+            ranks learn the same step size. Needs ``granularity="group"``. Does nothing (no
+            collective call) when ``torch.distributed`` is not initialized. Not needed under
+            ``DistributedDataParallel``, whose gradients are already all-reduced
+            (default: False).
 
     .. note::
         Step sizes are learned in log space (``a = lr * exp(u)``), so they stay positive

@@ -287,6 +287,7 @@ class TowerAdam(TowerOptimizer):
         fused: bool | None = None,
         learn_betas: bool = False,
         hyper_level: Level | None = None,
+        sharded: bool = False,
     ) -> None:
         if weight_decay is None:
             weight_decay = self._default_weight_decay
@@ -311,6 +312,7 @@ class TowerAdam(TowerOptimizer):
             "horizon": DEFAULT_HORIZON if horizon is None else horizon,
             "learn_betas": learn_betas,
             "hyper_level": hyper_level or DEFAULT_HYPER_LEVEL,
+            "sharded": sharded,
         }
         super().__init__(params, defaults)
 

@@ -192,6 +192,7 @@ class TowerSGD(TowerOptimizer):
         maximize: bool = False,
         learn_momentum: bool = False,
         hyper_level: Level | None = None,
+        sharded: bool = False,
     ) -> None:
         if learn_momentum and not 0.0 < momentum < 1.0:
             raise ValueError(f"learn_momentum=True needs an initial momentum in (0, 1); got momentum={momentum}")
@@ -216,6 +217,7 @@ class TowerSGD(TowerOptimizer):
             "horizon": default_horizon(momentum) if horizon is None else horizon,
             "learn_momentum": learn_momentum,
             "hyper_level": hyper_level or DEFAULT_HYPER_LEVEL,
+            "sharded": sharded,
         }
         super().__init__(params, defaults)
 

@@ -32,6 +32,14 @@ too large from wrecking the model in its first steps.
 
 Host reads: the step count and one skip/retreat flag per group are read from the device
 each step; all learned values stay tensors.
+
+Sharded parameters (``sharded=True``): under ``ZeroRedundancyOptimizer`` or FSDP2 each rank
+holds only part of a group, so every dot product above is a partial sum. Before anything is
+decided, :func:`_reduce_across_ranks` sums them over the default process group (one
+all-reduce of a packed float64 vector; a second one takes the maximum of the largest gradient
+entry when the SGD growth guard needs it), so every rank skips, retreats and learns the same
+step sizes. A rank that holds no parameter of the group still takes part (with zeros). Off by
+default, and without an initialized process group it does nothing: no collective is called.
 """
 
 from __future__ import annotations
@@ -42,6 +50,7 @@ from typing import Any, Protocol
 
 import torch
 from torch import Tensor
+from torch import distributed as dist
 from torch.optim import Optimizer
 
 from . import _chunks
@@ -160,6 +169,16 @@ def _check_lr(lr: float | Tensor) -> None:
         raise ValueError(f"Invalid learning rate: {lr!r}; expected a finite number >= 0")
 
 
+def _check_sharded(sharded: Any, granularity: Any) -> None:
+    if not isinstance(sharded, bool):
+        raise ValueError(f"Invalid sharded: {sharded!r}; expected True or False")
+    if sharded and granularity != "group":
+        raise ValueError(
+            f"sharded=True needs granularity='group' (got {granularity!r}): "
+            "ranks hold different tensors, so per-tensor step sizes cannot be matched up"
+        )
+
+
 def _check_horizon(horizon: float) -> None:
     if not (isinstance(horizon, (int, float)) and 0.0 <= horizon < 1.0):
         raise ValueError(f"Invalid horizon: {horizon!r}; expected 0 <= horizon < 1 (0 = one step back)")
@@ -177,6 +196,9 @@ class TowerOptimizer(Optimizer):
         ``levels``: the upper levels, level 1 first (plain dicts of :class:`Level` fields).
         ``granularity``: ``"group"`` (one learned step size per group) or ``"tensor"``.
         ``retreat``: take back a step that made the loss rise along its direction.
+        ``sharded``: the group's parameters are split over the ranks of the default
+            process group (``ZeroRedundancyOptimizer``, FSDP2): reduce the dot products
+            across ranks before deciding anything (see the module docstring).
     """
 
     _rule: BaseRule
@@ -201,6 +223,7 @@ class TowerOptimizer(Optimizer):
             group.setdefault("granularity", "group")
             group.setdefault("maximize", False)
             group.setdefault("horizon", 0.0)
+            group.setdefault("sharded", False)
             if _TOWER_KEY in group:
                 for key in ("retreated", "prev_gmax", "peak_gmax"):
                     group[_TOWER_KEY].setdefault(key, torch.zeros_like(group[_TOWER_KEY]["step"]))
@@ -229,6 +252,10 @@ class TowerOptimizer(Optimizer):
             _check_lr(param_group["lr"])
         if "horizon" in param_group:
             _check_horizon(param_group["horizon"])
+        _check_sharded(
+            param_group.get("sharded", self.defaults.get("sharded", False)),
+            param_group.get("granularity", self.defaults.get("granularity")),
+        )
         param_group.pop(_TOWER_KEY, None)  # learned state is never shared between groups
         super().add_param_group(param_group)
 
@@ -326,21 +353,22 @@ class TowerOptimizer(Optimizer):
 
     def _step_group(self, group: dict[str, Any]) -> None:
         indexed = [(i, p) for i, p in enumerate(group["params"]) if p.grad is not None]
-        if not indexed:
+        sharded = _shards_across_ranks(group)
+        if not indexed and not sharded:
             return
         for _, p in indexed:
             if p.grad.is_sparse:
                 raise RuntimeError(f"{self.__class__.__name__} does not support sparse gradients")
             if torch.is_complex(p):
                 raise RuntimeError(f"{self.__class__.__name__} does not support complex parameters")
-        params = [p for _, p in indexed]
-        grads = [p.grad for p in params]
-        states = [self.state[p] for p in params]
+        states = [self.state[p] for _, p in indexed]
+        params, grads = _local_parts([p for _, p in indexed], sharded, self.__class__.__name__)
         levels = _levels_of(group)
-        ts = self._tower_state(group, params[0].device)
+        device = params[0].device if params else _local_device(group)
+        ts = self._tower_state(group, device)
         learns_hyper = "hyper_value" in ts
         if not levels and not learns_hyper:
-            self._plain_step(group, ts, params, grads, states)
+            self._plain_step(group, ts, params, grads, states, sharded)
             return
 
         units = ts["log_step"].shape[0]
@@ -348,8 +376,9 @@ class TowerOptimizer(Optimizer):
         unit_index = torch.tensor(unit_of, device=ts["step"].device)
 
         def per_unit(values: Iterable[Tensor]) -> Tensor:
-            stacked = torch.stack(list(values)).double()
-            return torch.zeros(units, dtype=torch.float64, device=stacked.device).index_add_(0, unit_index, stacked)
+            out = torch.zeros(units, dtype=torch.float64, device=unit_index.device)
+            listed = list(values)
+            return out.index_add_(0, unit_index, torch.stack(listed).double()) if listed else out
 
         lr0 = torch.as_tensor(group["lr"], dtype=torch.float64, device=ts["step"].device).reshape(1)
         a_prev = ts["prev_step"][:, 0] if levels else ts.get("prev_lr", lr0).expand(units)
@@ -368,7 +397,12 @@ class TowerOptimizer(Optimizer):
             ]
             dot_u, slope_u = per_unit(pr[0] for pr in probes), per_unit(pr[1] for pr in probes)
             if learns_hyper:
-                tangent_dots = torch.stack([torch.stack(pr[2]) for pr in probes]).double().sum(dim=0)
+                tangent_dots = (
+                    torch.stack([torch.stack(pr[2]) for pr in probes]).double().sum(dim=0)
+                    if probes
+                    else torch.zeros_like(ts["hyper_value"])
+                )
+        trail_u = None
         if horizon > 0 and levels:
             # <g_s, D_{s-1}>: the gradient against the decaying trail of recent updates,
             # D = Σ_j γ^(s-1-j) Δ_j, kept as its moving average E = (1 - γ) D.
@@ -378,9 +412,8 @@ class TowerOptimizer(Optimizer):
                 else zero
                 for p, g, st in zip(params, grads, states, strict=True)
             ]
-            hyper_dot = per_unit(trail_dots) / (1.0 - horizon)
-        else:
-            hyper_dot = dot_u * a_prev
+            trail_u = per_unit(trail_dots)
+        hyper_dot = trail_u / (1.0 - horizon) if trail_u is not None else dot_u * a_prev
 
         # Every dot product above contains a gradient, and inf * 0 = nan: a non-finite gradient
         # always shows in them. The largest entry is only needed by the growth guard.
@@ -390,6 +423,17 @@ class TowerOptimizer(Optimizer):
         finite = torch.stack([torch.isfinite(c).all() for c in checks]).all()
         if not (exact or learns_hyper) and any("update_ema" not in st for st in states):
             finite = finite & _grads_finite(grads)  # no trail yet: no dot product saw the gradient
+        if sharded:  # partial sums over this rank's parameters: complete them before deciding
+            sums = [dot_u, slope_u, trail_u, tangent_dots]
+            count, finite, reduced, gmax_all = _reduce_across_ranks(len(params), finite, sums, gmax if guard else None)
+            if count == 0:
+                return  # no rank had a gradient in this group
+            dot_u, slope_u = reduced[0], reduced[1]  # type: ignore[assignment]  # never None
+            trail_u, tangent_dots = reduced[2], reduced[3]
+            gmax = gmax if gmax_all is None else gmax_all
+            hyper_dot = trail_u / (1.0 - horizon) if trail_u is not None else dot_u * a_prev
+            checks = [hyper_dot, slope_u, dot_u, gmax] + ([tangent_dots] if tangent_dots is not None else [])
+            finite = finite & torch.stack([torch.isfinite(c).all() for c in checks]).all()
         # Start-up test: the loss rose along the last step (secant ratio rho).
         prev_slope = ts["prev_slope"].sum()
         rho = dot_u.sum() / prev_slope
@@ -458,6 +502,8 @@ class TowerOptimizer(Optimizer):
         horizon: float,
     ) -> None:
         """The base update with step sizes ``a0`` [units], folding it into the trail when ``horizon > 0``."""
+        if not params:  # a rank holding none of a sharded group's parameters
+            return
         per_unit = [a0[u] for u in range(a0.shape[0])]  # one tensor per unit: one fused kernel call per unit
         step_sizes = [per_unit[u] for u in unit_of]
         if horizon == 0:
@@ -480,9 +526,15 @@ class TowerOptimizer(Optimizer):
         params: list[Tensor],
         grads: list[Tensor],
         states: list[dict[str, Any]],
+        sharded: bool = False,
     ) -> None:
         """Depth 0, nothing learned: the base optimizer itself, with non-finite steps skipped."""
-        if not bool(_grads_finite(grads)):
+        finite = _grads_finite(grads) if grads else torch.ones((), dtype=torch.bool)
+        if sharded:
+            count, finite, _, _ = _reduce_across_ranks(len(params), finite, [], None)
+            if count == 0:
+                return
+        if not bool(finite):
             ts["skipped"] += 1
             return
         ts["step"] += 1
@@ -490,6 +542,78 @@ class TowerOptimizer(Optimizer):
             group, torch.as_tensor(group["lr"], dtype=torch.float64, device=ts["step"].device).reshape(1)
         )
         self._rule.update(group, params, grads, states, [group["lr"]] * len(params))
+
+
+def _shards_across_ranks(group: dict[str, Any]) -> bool:
+    """Whether the group asks for (``sharded=True``) and can do the cross-rank reduction."""
+    return bool(group.get("sharded")) and dist.is_available() and dist.is_initialized()
+
+
+def _local_device(group: dict[str, Any]) -> torch.device:
+    """Where a rank that holds none of the group's gradients keeps the group's tower state."""
+    if not group["params"]:
+        return torch.device("cpu")
+    return _shard(group["params"][0]).device
+
+
+def _local_parts(params: list[Tensor], sharded: bool, owner: str) -> tuple[list[Tensor], list[Tensor]]:
+    """The parameters and gradients as plain tensors: this rank's shard of DTensors (FSDP2).
+
+    The shard shares storage with the DTensor, so updating it in place updates the parameter.
+    Per-parameter state is then kept for the shard only, as plain tensors, and the update
+    (fused kernels included) runs on plain tensors.
+    """
+    grads: list[Tensor] = [p.grad for p in params]  # type: ignore[misc]  # callers keep p.grad is not None
+    if not any(_is_dtensor(p) for p in params):
+        return params, grads
+    if not sharded:
+        raise RuntimeError(
+            f"{owner}: the parameters are DTensors (FSDP2) and their dot products are partial sums; "
+            "pass sharded=True (with torch.distributed initialized) to reduce them across ranks"
+        )
+    return [_shard(p) for p in params], [_shard(g) for g in grads]
+
+
+def _is_dtensor(t: Any) -> bool:
+    return type(t).__name__ == "DTensor" and hasattr(t, "to_local")
+
+
+def _shard(t: Tensor) -> Tensor:
+    """This rank's part of a DTensor (a view of its storage); any other tensor as it is."""
+    return t.to_local() if _is_dtensor(t) else t  # type: ignore[attr-defined, no-any-return]
+
+
+def _reduce_across_ranks(
+    count: int, finite: Tensor, sums: list[Tensor | None], gmax: Tensor | None
+) -> tuple[int, Tensor, list[Tensor | None], Tensor | None]:
+    """Complete this rank's partial values over the default process group (``sharded=True``).
+
+    ``count`` (parameters with a gradient here), the flag ``not finite`` and every tensor of
+    ``sums`` (``None`` entries are passed through) are packed into ONE float64 vector and
+    all-reduced with SUM; ``gmax`` (the largest absolute gradient entry), when given, takes a
+    second all-reduce with MAX. Returns the total count, whether every rank was finite, the
+    summed tensors (in their shapes) and the global ``gmax``. Every rank gets bitwise the same
+    values, so every rank then takes the same decisions.
+    """
+    device = finite.device
+    present = [s for s in sums if s is not None]
+    head = torch.stack([torch.tensor(float(count), dtype=torch.float64), (~finite).double().cpu()]).to(device)
+    packed = torch.cat([head] + [s.reshape(-1).double().to(device) for s in present])
+    dist.all_reduce(packed, op=dist.ReduceOp.SUM)
+    out: list[Tensor | None] = []
+    offset = 2
+    for s in sums:
+        if s is None:
+            out.append(None)
+            continue
+        out.append(packed[offset : offset + s.numel()].reshape(s.shape).to(s.device))
+        offset += s.numel()
+    gmax_all = None
+    if gmax is not None:
+        gmax_all = gmax.detach().double().reshape(1).clone()
+        dist.all_reduce(gmax_all, op=dist.ReduceOp.MAX)
+        gmax_all = gmax_all.reshape(())
+    return int(packed[0]), packed[1] == 0, out, gmax_all
 
 
 def _publish_effective_lr(group: dict[str, Any], a0: Tensor) -> None:
@@ -504,8 +628,8 @@ def _grad_max(grads: list[Tensor]) -> Tensor:
     One ``aminmax`` pass per tensor (the max-abs norm kernel is ~15x slower on CPU).
     """
     extremes = [torch.stack(torch.aminmax(g)) for g in grads if g.numel()]
-    if not extremes:
-        return torch.zeros((), dtype=torch.float64, device=grads[0].device)
+    if not extremes:  # no entries (or, on a rank holding none of a sharded group, no tensors)
+        return torch.zeros((), dtype=torch.float64, device=grads[0].device if grads else None)
     return torch.stack(extremes).abs().max().double()
 
 

@@ -13,7 +13,7 @@ SCRIPTS = sorted(p.name for p in EXAMPLES.glob("*.py") if not p.name.startswith(
 
 
 def test_every_example_is_listed() -> None:
-    assert len(SCRIPTS) == 8
+    assert len(SCRIPTS) == 9
 
 
 @pytest.mark.parametrize("script", SCRIPTS)
