@@ -69,9 +69,6 @@ class AdamRule:
     def __init__(self, decoupled: bool) -> None:
         self.decoupled = decoupled
 
-    def needs_history(self, group: dict[str, Any]) -> bool:
-        return False
-
     def hyper_initial(self, group: dict[str, Any]) -> list[float]:
         return list(group["betas"]) if group.get("learn_betas") else []
 

@@ -17,7 +17,6 @@ own ``momentum`` / ``betas`` keep the initial values.
 
 from __future__ import annotations
 
-import math
 from collections.abc import Sequence
 from typing import Any
 
@@ -72,8 +71,3 @@ def hyper_step(ts: dict[str, Tensor], tangent_dots: Tensor, a0_prev: Tensor, lev
     ts["hyper_grad"].copy_(torch.where(has_prev, h, ts["hyper_grad"]))
     value.copy_(torch.sigmoid(z))
     ts["hyper_count"] += 1
-
-
-def logit(x: float) -> float:
-    """``log(x / (1 - x))`` for documentation and tests."""
-    return math.log(x / (1 - x))

@@ -135,8 +135,7 @@ def init_tower_state(levels: Sequence[Level], units: int, device: torch.device) 
       ``exp_avg``, ``exp_avg_sq`` [U, D]: moments of ``ĥ`` (kind "adam").
       ``hypergrad`` [U, D]: the last ``ĥ_1 .. ĥ_D`` (for inspection and tests).
       ``prev_slope`` [U]: ``<g_{s-1}, d_{0,s-1}>``, the last step's directional slope.
-      ``prev_gmax``, ``peak_gmax`` []: the largest absolute gradient entry of the last taken
-      step, and of all taken steps.
+      ``peak_gmax`` []: the largest absolute gradient entry of all taken steps (SGD's guard).
       ``step``, ``skipped``, ``retreats`` []: counters; ``retreated`` []: 1 if the last call retreated.
     """
     d = len(levels)
@@ -152,7 +151,6 @@ def init_tower_state(levels: Sequence[Level], units: int, device: torch.device) 
         "exp_avg_sq": torch.zeros(units, d, **kw),
         "hypergrad": torch.zeros(units, d, **kw),
         "prev_slope": torch.zeros(units, **kw),
-        "prev_gmax": torch.zeros((), **kw),
         "peak_gmax": torch.zeros((), **kw),
         "step": torch.zeros((), **kw),
         "skipped": torch.zeros((), **kw),

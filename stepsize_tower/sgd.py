@@ -46,7 +46,9 @@ class SGDRule:
     def _mu(self, group: dict[str, Any]) -> float | Tensor:
         return group["tower"]["hyper_value"][0] if group.get("learn_momentum") else group["momentum"]
 
-    def needs_history(self, group: dict[str, Any]) -> bool:
+    @staticmethod
+    def _keeps_previous_grad(group: dict[str, Any]) -> bool:
+        """Plain SGD and Nesterov need ``g_{s-1}`` to rebuild the previous direction."""
         return group["momentum"] == 0 or group["nesterov"]
 
     def probe(
@@ -91,7 +93,7 @@ class SGDRule:
         step_sizes: Sequence[Tensor | float],
     ) -> None:
         mu, damp = self._mu(group), group["dampening"]
-        keep_grad = bool(group["levels"]) and self.needs_history(group)
+        keep_grad = bool(group["levels"]) and self._keeps_previous_grad(group)
         learn = bool(group.get("learn_momentum"))
         for p, grad, state, a in zip(params, grads, states, step_sizes, strict=True):
             g = _grad(group, p, grad)

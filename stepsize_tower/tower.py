@@ -107,10 +107,6 @@ class BaseRule(Protocol):
     #: size, as in Adam): a growing gradient then does not make a growing update.
     normalized: bool
 
-    def needs_history(self, group: dict[str, Any]) -> bool:
-        """Whether :meth:`probe` needs state kept from the previous step."""
-        ...
-
     def hyper_initial(self, group: dict[str, Any]) -> list[float]:
         """Initial values of the hyperparameters in (0, 1) this group learns (usually none)."""
         ...
@@ -225,7 +221,7 @@ class TowerOptimizer(Optimizer):
             group.setdefault("horizon", 0.0)
             group.setdefault("sharded", False)
             if _TOWER_KEY in group:
-                for key in ("retreated", "prev_gmax", "peak_gmax"):
+                for key in ("retreated", "peak_gmax"):
                     group[_TOWER_KEY].setdefault(key, torch.zeros_like(group[_TOWER_KEY]["step"]))
 
     def _make_rule(self) -> BaseRule:
@@ -413,27 +409,27 @@ class TowerOptimizer(Optimizer):
                 for p, g, st in zip(params, grads, states, strict=True)
             ]
             trail_u = per_unit(trail_dots)
-        hyper_dot = trail_u / (1.0 - horizon) if trail_u is not None else dot_u * a_prev
-
-        # Every dot product above contains a gradient, and inf * 0 = nan: a non-finite gradient
-        # always shows in them. The largest entry is only needed by the growth guard.
+        # The largest gradient entry is only needed by the growth guard (SGD).
         guard = bool(group["retreat"]) and bool(levels) and not self._rule.normalized
-        gmax = _grad_max(grads) if guard else ts["prev_gmax"]
-        checks = [hyper_dot, slope_u, dot_u, gmax] + ([tangent_dots] if tangent_dots is not None else [])
-        finite = torch.stack([torch.isfinite(c).all() for c in checks]).all()
+        gmax = _grad_max(grads) if guard else None
+        # Every dot product contains a gradient, and inf * 0 = nan: a non-finite gradient shows in
+        # them, except on a step where no dot product saw the gradient (no trail yet).
+        local_finite = (
+            torch.isfinite(gmax) if gmax is not None else torch.ones((), dtype=torch.bool, device=zero.device)
+        )
         if not (exact or learns_hyper) and any("update_ema" not in st for st in states):
-            finite = finite & _grads_finite(grads)  # no trail yet: no dot product saw the gradient
+            local_finite = local_finite & _grads_finite(grads)
         if sharded:  # partial sums over this rank's parameters: complete them before deciding
             sums = [dot_u, slope_u, trail_u, tangent_dots]
-            count, finite, reduced, gmax_all = _reduce_across_ranks(len(params), finite, sums, gmax if guard else None)
+            count, local_finite, reduced, gmax_all = _reduce_across_ranks(len(params), local_finite, sums, gmax)
             if count == 0:
                 return  # no rank had a gradient in this group
             dot_u, slope_u = reduced[0], reduced[1]  # type: ignore[assignment]  # never None
             trail_u, tangent_dots = reduced[2], reduced[3]
-            gmax = gmax if gmax_all is None else gmax_all
-            hyper_dot = trail_u / (1.0 - horizon) if trail_u is not None else dot_u * a_prev
-            checks = [hyper_dot, slope_u, dot_u, gmax] + ([tangent_dots] if tangent_dots is not None else [])
-            finite = finite & torch.stack([torch.isfinite(c).all() for c in checks]).all()
+            gmax = gmax_all
+        hyper_dot = trail_u / (1.0 - horizon) if trail_u is not None else dot_u * a_prev
+        checks = [hyper_dot, slope_u, dot_u] + [c for c in (gmax, tangent_dots) if c is not None]
+        finite = local_finite & torch.stack([torch.isfinite(c).all() for c in checks]).all()
         # Start-up test: the loss rose along the last step (secant ratio rho).
         prev_slope = ts["prev_slope"].sum()
         rho = dot_u.sum() / prev_slope
@@ -441,11 +437,12 @@ class TowerOptimizer(Optimizer):
         secant = (prev_slope > 0) & (rho < threshold)
         if not may_retreat:
             secant = torch.zeros_like(secant)
-        # Any time: the largest gradient entry exceeds RETREAT_GROWTH x the largest seen so far.
-        growth = gmax / ts["peak_gmax"]
-        blowup = (ts["peak_gmax"] > 0) & (growth > RETREAT_GROWTH)
-        if not guard:
-            blowup = torch.zeros_like(blowup)
+        # Any time (SGD): the largest gradient entry exceeds RETREAT_GROWTH x the largest seen so far.
+        if gmax is not None:
+            growth = gmax / ts["peak_gmax"]
+            blowup = (ts["peak_gmax"] > 0) & (growth > RETREAT_GROWTH)
+        else:
+            growth, blowup = torch.ones_like(rho), torch.zeros_like(secant)
         retreat = secant | blowup
         skip_now, retreat_now = torch.stack([~finite, retreat]).tolist()
 
@@ -463,8 +460,8 @@ class TowerOptimizer(Optimizer):
         a0 = tower_step(ts, levels, hyper_dot, group["lr"]) if levels else lr0.expand(units)
         _publish_effective_lr(group, a0)
         ts["prev_slope"].copy_(slope_u)
-        ts["prev_gmax"].copy_(gmax)
-        torch.maximum(ts["peak_gmax"], gmax, out=ts["peak_gmax"])
+        if gmax is not None:
+            torch.maximum(ts["peak_gmax"], gmax, out=ts["peak_gmax"])
         ts["step"] += 1
         self._advance(group, params, grads, states, unit_of, a0, horizon if levels else 0.0)
 
