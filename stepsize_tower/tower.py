@@ -255,9 +255,29 @@ class TowerOptimizer(Optimizer):
         param_group.pop(_TOWER_KEY, None)  # learned state is never shared between groups
         super().add_param_group(param_group)
 
+    def state_dict(self) -> dict[str, Any]:
+        """torch's optimizer state dict; under FSDP2 each per-parameter buffer as a DTensor.
+
+        The step keeps those buffers for this rank's shard as plain tensors. Handed out plain,
+        the distributed checkpoint API would take them for replicated values (saving one rank's
+        shard for all); wrapped like their parameter, they are saved, gathered and resharded as
+        the parameters are. The wrappers share storage with the optimizer's buffers.
+        """
+        out = super().state_dict()
+        params = [p for group in self.param_groups for p in group["params"]]
+        for index, st in out["state"].items():
+            p = params[index]
+            if _is_dtensor(p):  # a new dict: the one torch hands out is the optimizer's own
+                out["state"][index] = {k: _as_param_layout(v, p) for k, v in st.items()}
+        return out
+
     def load_state_dict(self, state_dict: dict[str, Any]) -> None:
         super().load_state_dict(state_dict)
         for group in self.param_groups:
+            for p in group["params"]:  # FSDP2: back to this rank's shard as plain tensors
+                if _is_dtensor(p) and p in self.state:
+                    st = self.state[p]
+                    st.update({k: _local_shard_of(v, p) for k, v in st.items() if _is_dtensor(v)})
             ts = group.get(_TOWER_KEY)
             if ts is not None and group["params"]:
                 device = group["params"][0].device
@@ -578,6 +598,22 @@ def _is_dtensor(t: Any) -> bool:
 def _shard(t: Tensor) -> Tensor:
     """This rank's part of a DTensor (a view of its storage); any other tensor as it is."""
     return t.to_local() if _is_dtensor(t) else t  # type: ignore[attr-defined, no-any-return]
+
+
+def _as_param_layout(value: Any, p: Any) -> Any:
+    """A buffer kept for the local shard of DTensor ``p``, as a DTensor laid out like ``p`` (same storage)."""
+    if not isinstance(value, Tensor) or _is_dtensor(value) or value.dim() == 0 or value.shape != p.to_local().shape:
+        return value  # e.g. the step count: the same on every rank
+    from torch.distributed.tensor import DTensor
+
+    return DTensor.from_local(value, p.device_mesh, p.placements, run_check=False, shape=p.shape, stride=p.stride())
+
+
+def _local_shard_of(value: Any, p: Any) -> Tensor:
+    """This rank's part of a loaded DTensor buffer, laid out like DTensor ``p`` first."""
+    if tuple(value.placements) != tuple(p.placements) or value.device_mesh != p.device_mesh:
+        value = value.redistribute(p.device_mesh, p.placements)
+    return value.to_local()  # type: ignore[no-any-return]
 
 
 def _reduce_across_ranks(

@@ -70,6 +70,8 @@ _OPTIMIZERS: dict[str, tuple[type, dict[str, Any]]] = {
     "sgd": (TowerSGD, {"lr": 1e-2, "momentum": 0.9}),
     # Learned betas: the tangent dot products are reduced as well.
     "adam_betas": (TowerAdam, {"lr": 1e-2, "learn_betas": True}),
+    # SGD with momentum at a typed step size 30x too large: it retreats at steps 5-7 and 13.
+    "sgd_retreats": (TowerSGD, {"lr": 0.3, "momentum": 0.9}),
 }
 
 
@@ -216,6 +218,73 @@ def _fsdp_worker(rank: int, kind: str) -> dict[str, Any]:
     return {"ref": ref, "sizes": opt.step_sizes(), "weights": weights}
 
 
+def _make_fsdp(kind: str) -> tuple[nn.Module, Any]:
+    from torch.distributed.fsdp import fully_shard
+
+    cls, kw = _OPTIMIZERS[kind]
+    model = _model()
+    fully_shard(model)
+    return model, cls(_groups(model), sharded=True, **kw)
+
+
+def _outcome(model: nn.Module, opt: Any) -> dict[str, Any]:
+    weights = [p.full_tensor().detach().clone() for p in model.parameters()]
+    return {"sizes": opt.step_sizes(), "skipped": opt.skipped_steps(), "retreats": opt.retreats(), "weights": weights}
+
+
+def _learned(opt: Any) -> dict[str, Any]:
+    """Copies of what the optimizer learned: per group ``tower`` and ``effective_lr``, per
+    parameter this rank's state (the shard under FSDP2)."""
+    groups = [({k: v.clone() for k, v in g["tower"].items()}, g["effective_lr"].clone()) for g in opt.param_groups]
+    params = [p for g in opt.param_groups for p in g["params"]]
+    state = [{k: v.clone() for k, v in opt.state[p].items()} for p in params]
+    return {"groups": groups, "state": state}
+
+
+def _fsdp_resume_worker(rank: int, kinds: tuple[str, ...], out: str) -> dict[str, Any]:
+    import torch.distributed.checkpoint as dcp
+    from torch.distributed.checkpoint.state_dict import StateDictOptions, get_state_dict, set_state_dict
+
+    batches = _batches()
+    split = STEPS // 2
+    result: dict[str, Any] = {}
+    for kind in kinds:
+        # Uninterrupted run.
+        model, opt = _make_fsdp(kind)
+        _train(model, opt, rank, batches)
+        straight = _outcome(model, opt)
+        # Half, then a sharded checkpoint (every rank writes its shards) and a full one (rank 0).
+        model, opt = _make_fsdp(kind)
+        _train(model, opt, rank, batches[:split])
+        saved = _learned(opt)
+        model_sd, optim_sd = get_state_dict(model, opt)
+        per_param: dict[str, dict[str, Any]] = optim_sd["state"]  # type: ignore[assignment]
+        state_types = sorted({type(v).__name__ for st in per_param.values() for v in st.values()})
+        path = Path(out) / f"dcp_{kind}"
+        dcp.save({"model": model_sd, "optim": optim_sd}, checkpoint_id=path)
+        full = get_state_dict(model, opt, options=StateDictOptions(full_state_dict=True, cpu_offload=True))
+        # Fresh model and optimizer, load, the other half.
+        model, opt = _make_fsdp(kind)
+        model_sd, optim_sd = get_state_dict(model, opt)
+        dcp.load({"model": model_sd, "optim": optim_sd}, checkpoint_id=path)
+        set_state_dict(model, opt, model_state_dict=model_sd, optim_state_dict=optim_sd)
+        loaded = _learned(opt)
+        at_load = opt.step_sizes()
+        retreats_at_load = opt.retreats()
+        _train(model, opt, rank, batches[split:])
+        result[kind] = {
+            "straight": straight,
+            "resumed": _outcome(model, opt),
+            "at_load": at_load,
+            "retreats_at_load": retreats_at_load,
+            "saved": saved,
+            "loaded": loaded,
+            "state_types": state_types,
+            "full": full if rank == 0 else None,
+        }
+    return result
+
+
 # ---------------------------------------------------------------------- tests
 
 
@@ -269,6 +338,73 @@ def test_fsdp2_sharded_matches_single_process(tmp_path: Path, kind: str) -> None
     _assert_close(_flat_sizes(r0["sizes"]), _flat_sizes(r0["ref"]["sizes"]))
     for w, ref in zip(r0["weights"], r0["ref"]["weights"], strict=True):
         _assert_close(w, ref)
+
+
+def _assert_same_learned(a: dict[str, Any], b: dict[str, Any]) -> None:
+    for (tower_a, eff_a), (tower_b, eff_b) in zip(a["groups"], b["groups"], strict=True):
+        assert tower_a.keys() == tower_b.keys()
+        assert all(torch.equal(tower_a[k], tower_b[k]) for k in tower_a), (tower_a, tower_b)
+        assert torch.equal(eff_a, eff_b)
+    for st_a, st_b in zip(a["state"], b["state"], strict=True):
+        assert st_a.keys() == st_b.keys()
+        assert all(torch.equal(st_a[k], st_b[k]) for k in st_a), (st_a, st_b)
+
+
+_RESUME_KINDS = ("adam", "sgd_retreats")
+
+
+@pytest.fixture(scope="module")
+def fsdp_resume(tmp_path_factory: pytest.TempPathFactory) -> list[dict[str, Any]]:
+    """One 2-rank run of :func:`_fsdp_resume_worker` for both tests below (spawning costs seconds)."""
+    pytest.importorskip("torch.distributed.fsdp")
+    tmp_path = tmp_path_factory.mktemp("fsdp_resume")
+    return _spawn(tmp_path, "_fsdp_resume_worker", _RESUME_KINDS, str(tmp_path))
+
+
+def test_fsdp2_distributed_checkpoint_resumes(fsdp_resume: list[dict[str, Any]]) -> None:
+    """Save mid-run with torch.distributed.checkpoint, load into a fresh FSDP2 model and optimizer,
+    train on: the same as never stopping. The last layer splits 2 + 1 rows over the ranks, so a
+    shard saved as one rank's copy for both would not even load."""
+    r0, r1 = fsdp_resume
+    for kind in _RESUME_KINDS:
+        for r in (r0[kind], r1[kind]):
+            # reference: the checkpointed optimizer itself (get_state_dict, dcp.save / dcp.load, set_state_dict)
+            _assert_same_learned(r["loaded"], r["saved"])
+            assert "DTensor" in r["state_types"]  # shard buffers handed to the checkpoint API as DTensors
+            assert r["at_load"] != r["straight"]["sizes"]  # the checkpoint was mid-run
+            # reference: the uninterrupted run of the same 14 steps (bitwise)
+            assert r["resumed"]["sizes"] == r["straight"]["sizes"]
+            assert r["resumed"]["skipped"] == r["straight"]["skipped"]
+            assert r["resumed"]["retreats"] == r["straight"]["retreats"]
+            if kind == "sgd_retreats":  # retreats on both sides of the checkpoint: their state is carried
+                assert 0 < r["retreats_at_load"] < r["straight"]["retreats"]
+            for w, ref in zip(r["resumed"]["weights"], r["straight"]["weights"], strict=True):
+                assert torch.equal(w, ref)
+        assert r0[kind]["resumed"]["sizes"] == r1[kind]["resumed"]["sizes"]
+
+
+def test_fsdp2_full_checkpoint_resumes_in_one_process(fsdp_resume: list[dict[str, Any]]) -> None:
+    """The consolidated checkpoint (``full_state_dict=True, cpu_offload=True``) loads into a plain
+    single-process optimizer, which continues as the FSDP2 run does on the same global batch."""
+    r0 = fsdp_resume[0]
+    for kind in _RESUME_KINDS:
+        model_sd, optim_sd = r0[kind]["full"]
+        cls, kw = _OPTIMIZERS[kind]
+        model = _model()
+        opt = cls(_groups(model), **kw)
+        model.load_state_dict(model_sd)
+        opt.load_state_dict(optim_sd)  # no process group here: the saved sharded=True is inert
+        assert opt.step_sizes() == r0[kind]["at_load"]
+        for batch in _batches()[STEPS // 2 :]:
+            opt.zero_grad()
+            nn.functional.mse_loss(model(batch[0]), batch[1]).backward()
+            opt.step()
+        # reference: the uninterrupted FSDP2 run (same math, summation order of two shards)
+        straight = r0[kind]["straight"]
+        _assert_close(_flat_sizes(opt.step_sizes()), _flat_sizes(straight["sizes"]))
+        assert (opt.skipped_steps(), opt.retreats()) == (straight["skipped"], straight["retreats"])
+        for w, ref in zip(model.parameters(), straight["weights"], strict=True):
+            _assert_close(w.detach(), ref)
 
 
 def test_sharded_option_is_validated_and_inert_without_process_group() -> None:
