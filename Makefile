@@ -16,9 +16,10 @@ $(STAMP): pyproject.toml
 
 venv: $(STAMP)
 
-# Optional framework integrations (Lightning, Hugging Face); their tests skip without them.
+# Optional framework integrations (Lightning, Hugging Face) and the Dask executor of the
+# recipe runner; their tests skip without them.
 extras: $(STAMP)
-	$(PY) -m pip install -q -e ".[lightning,hf]" torch==2.13.0
+	$(PY) -m pip install -q -e ".[lightning,hf,dask]" torch==2.13.0
 
 demo: $(STAMP)
 	$(VENV)/bin/stepsize-tower run recipes/quickstart.yaml --out runs/quickstart

@@ -182,6 +182,33 @@ def _check_rest(loaded: LoadedRecipe) -> None:
         raise err(("resources", "workers"), f"expected at least 1 worker, got {res.workers}")
     if res.threads < 1 or res.log_every < 1:
         raise err(("resources",), "threads and log_every must be >= 1")
+    _check_executor(loaded)
+
+
+def _check_executor(loaded: LoadedRecipe) -> None:
+    res = loaded.recipe.resources
+    err = loaded.error
+    if res.executor != "dask":
+        if res.address is not None:
+            raise err(
+                ("resources", "address"),
+                f"'address' is the scheduler of executor 'dask', but this recipe runs on {res.executor!r}; "
+                "set resources.executor: dask (or --executor dask), or remove address",
+            )
+        return
+    from .dask_backend import NEEDS_ADDRESS, require_distributed
+    from .executors import ExecutorError
+
+    if res.address is None:
+        raise err(("resources", "executor"), NEEDS_ADDRESS)
+    if not res.address.strip() or any(c.isspace() for c in res.address):
+        raise err(
+            ("resources", "address"), f"expected a scheduler address such as tcp://10.0.0.5:8786, got {res.address!r}"
+        )
+    try:
+        require_distributed()
+    except ExecutorError as exc:
+        raise err(("resources", "executor"), str(exc)) from None
 
 
 def _check_build(loaded: LoadedRecipe) -> None:

@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import argparse
 import importlib.util
+import json
 import shlex
 import subprocess
 import sys
@@ -21,6 +22,8 @@ __all__ = ["bundled_recipes", "main", "resolve_recipe_path"]
 EXIT_FAILED_TRIALS = 1
 EXIT_RECIPE = 2
 EXIT_INTERRUPTED = 130
+#: ``--executor`` choices (the same as ``resources.executor``; kept here so ``--help`` imports no torch).
+EXECUTOR_NAMES = ("local", "dask")
 
 
 def bundled_recipes() -> dict[str, Path]:
@@ -42,9 +45,19 @@ def _load(args: argparse.Namespace):  # type: ignore[no-untyped-def]
     from .checks import check_recipe
     from .schema import load_recipe
 
-    loaded = load_recipe(resolve_recipe_path(args.recipe), args.set or ())
+    loaded = load_recipe(resolve_recipe_path(args.recipe), [*(args.set or ()), *_executor_overrides(args)])
     check_recipe(loaded)
     return loaded
+
+
+def _executor_overrides(args: argparse.Namespace) -> list[str]:
+    """``--executor`` and ``--address`` as overrides of ``resources`` (checked like the recipe's own keys)."""
+    overrides = []
+    for flag in ("executor", "address"):
+        value = getattr(args, flag, None)
+        if value is not None:
+            overrides.append(f"resources.{flag}={json.dumps(value)}")  # quoted: YAML reads it as a string
+    return overrides
 
 
 def _cmd_check(args: argparse.Namespace) -> int:
@@ -166,7 +179,19 @@ def _parser() -> argparse.ArgumentParser:
     p = sub.add_parser("run", help="run (or resume) a sweep")
     p.add_argument("recipe", help="a recipe file, or the name of a bundled recipe")
     p.add_argument("--out", help="sweep folder (default: runs/<recipe name>)")
-    p.add_argument("--workers", type=int, help="worker processes (default: the recipe's, else one per core)")
+    p.add_argument(
+        "--workers",
+        type=int,
+        help="local worker processes (default: the recipe's, else one per core); with dask, trials in flight at once",
+    )
+    p.add_argument(
+        "--executor",
+        choices=EXECUTOR_NAMES,
+        help="where trials run: local processes (default) or a Dask cluster (overrides resources.executor)",
+    )
+    p.add_argument(
+        "--address", metavar="URL", help="the Dask scheduler, such as tcp://10.0.0.5:8786 (overrides resources.address)"
+    )
     p.add_argument("--set", **sets)  # type: ignore[arg-type]
     p.add_argument("--no-report", action="store_true", help="do not write the report at the end")
     p.set_defaults(func=_cmd_run)

@@ -25,7 +25,7 @@ from .build import build_optimizer, build_schedule, build_task, resolve_steps
 from .schema import ScheduleConfig, TaskConfig
 from .trials import Trial
 
-__all__ = ["TrialJob", "current_step_sizes", "run_trial", "stepsize_tag"]
+__all__ = ["TrialJob", "current_step_sizes", "lost_record", "run_trial", "stepsize_tag"]
 
 Record = dict[str, Any]
 
@@ -212,3 +212,19 @@ def run_trial(job: TrialJob) -> Record:
     record["wall_seconds"] = time.perf_counter() - start
     record["finished_at"] = time.time()
     return record
+
+
+def lost_record(job: TrialJob, reason: str, exc: BaseException) -> Record:
+    """The failed record of a trial whose worker stopped before returning one (killed, out of memory, lost).
+
+    ``reason`` says which worker, such as ``"the worker process running this trial stopped"``;
+    the exception that reported it follows.
+    """
+    return {
+        "trial_id": job.trial.trial_id,
+        "status": "failed",
+        "trial": job.trial.config(),
+        "error": f"{reason}: {type(exc).__name__}: {exc}",
+        "wall_seconds": None,
+        "finished_at": time.time(),
+    }

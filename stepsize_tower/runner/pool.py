@@ -17,7 +17,7 @@ from typing import Any, TextIO
 
 import torch
 
-from .execute import TrialJob, run_trial
+from .execute import TrialJob, lost_record, run_trial
 
 __all__ = ["Progress", "run_pool"]
 
@@ -142,11 +142,4 @@ def _stop_workers(executor: ProcessPoolExecutor) -> None:
 
 
 def _lost(job: TrialJob, exc: BaseException) -> Record:
-    return {
-        "trial_id": job.trial.trial_id,
-        "status": "failed",
-        "trial": job.trial.config(),
-        "error": f"the worker process running this trial stopped: {type(exc).__name__}: {exc}",
-        "wall_seconds": None,
-        "finished_at": time.time(),
-    }
+    return lost_record(job, "the worker process running this trial stopped", exc)

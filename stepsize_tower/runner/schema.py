@@ -10,7 +10,7 @@ A recipe is a YAML mapping with the sections below (every key optional except ``
       - {name: adam, kind: fixed, base: Adam}
     sweep: {lr: {low: 1.0e-5, high: 1.0, points: 6}, depths: [1], seeds: [0, 1]}
     tolerance: {metric: train_loss, ratio: 1.25, slack: 0.01}
-    resources: {workers: 2, threads: 1, log_every: 10}
+    resources: {workers: 2, threads: 1, log_every: 10}   # executor: dask, address: tcp://host:8786
 
 :func:`load_recipe` parses the file, applies ``--set key=value`` overrides and converts the
 result into :class:`Recipe`, raising :class:`RecipeError` with the file, line, key, what
@@ -34,6 +34,7 @@ import yaml
 from .errors import RecipeError
 
 __all__ = [
+    "ExecutorName",
     "LoadedRecipe",
     "LogRange",
     "OptimizerConfig",
@@ -186,13 +187,29 @@ class ToleranceConfig:
     slack: float = 0.01
 
 
+#: The executors a recipe can name in ``resources.executor`` (see :mod:`stepsize_tower.runner.executors`).
+ExecutorName = Literal["local", "dask"]
+
+
 @dataclass
 class ResourcesConfig:
-    """How to run: worker processes (default: one per core), threads per worker, logging period."""
+    """How to run the trials.
+
+    Attributes:
+        workers: ``local``: worker processes (default: one per core); ``dask``: the most
+            trials in flight at once (default: no limit, the scheduler spreads them).
+        threads: torch threads per trial.
+        log_every: steps between logged step sizes and minibatch losses.
+        executor: ``local`` (spawned processes on this machine) or ``dask`` (tasks on a
+            running Dask distributed cluster, at ``address``).
+        address: the Dask scheduler, such as ``tcp://10.0.0.5:8786`` (``dask`` only).
+    """
 
     workers: int | None = None
     threads: int = 1
     log_every: int = 10
+    executor: ExecutorName = "local"
+    address: str | None = None
 
 
 @dataclass

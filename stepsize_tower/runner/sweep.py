@@ -16,6 +16,7 @@ import json
 import os
 import sys
 import time
+from contextlib import ExitStack
 from dataclasses import dataclass
 from pathlib import Path
 from typing import TextIO
@@ -23,8 +24,9 @@ from typing import TextIO
 import yaml
 
 from .checks import search_path
-from .execute import TrialJob, run_trial
-from .pool import Progress, run_pool
+from .execute import TrialJob
+from .executors import Executor, ExecutorError, executor_for
+from .pool import Progress
 from .schema import LoadedRecipe, recipe_to_dict
 from .store import ResultStore
 from .trials import Trial, expand_trials
@@ -95,41 +97,55 @@ def jobs_for(loaded: LoadedRecipe, out: Path, trials: list[Trial]) -> list[Trial
 
 
 def run_sweep(
-    loaded: LoadedRecipe, out: Path, workers: int | None = None, stream: TextIO | None = None, inline: bool = False
+    loaded: LoadedRecipe,
+    out: Path,
+    workers: int | None = None,
+    stream: TextIO | None = None,
+    inline: bool = False,
+    executor: Executor | None = None,
 ) -> SweepSummary:
     """Run every trial of ``loaded`` not yet done in ``out``; failed ones are retried.
 
     Args:
         loaded: a checked recipe.
         out: the sweep folder (created).
-        workers: worker processes (default: the recipe's, else one per core).
+        workers: local worker processes (default: the recipe's, else one per core); on
+            Dask, the most trials in flight at once.
         stream: where progress goes (default: stderr).
         inline: run trials in this process, one after another (for tests and debugging).
+        executor: where the trials run (default: the recipe's ``resources.executor``, see
+            :mod:`stepsize_tower.runner.executors`).
+
+    Raises:
+        RecipeError: the executor cannot start (an extra is missing, the scheduler cannot be
+            reached); nothing is written then.
     """
     trials = expand_trials(loaded.recipe)
-    write_resolved(loaded, out, trials)
     store = ResultStore(out)
     done = store.done_ids()
     todo = [t for t in trials if t.trial_id not in done]
     skipped = len(trials) - len(todo)
-    n_workers = workers or loaded.recipe.resources.workers or os.cpu_count() or 1
-    n_workers = max(1, min(n_workers, len(todo) or 1))
+    runner = executor if executor is not None else executor_for(loaded, len(todo), workers, inline)
     stream = stream if stream is not None else sys.stderr
-    stream.write(
-        f"{loaded.recipe.name}: {len(trials)} trials, {skipped} already done, {len(todo)} to run "
-        f"on {1 if inline else n_workers} worker{'s' if n_workers > 1 and not inline else ''} -> {out}\n"
-    )
-    progress = Progress(len(trials), skipped, stream)
-    jobs = jobs_for(loaded, out, todo)
-    with store.open() as sink:
-        if inline:
-            ok = failed = 0
-            for job in jobs:
-                record = run_trial(job)
-                sink.append(record)
-                ok, failed = ok + (record["status"] == "ok"), failed + (record["status"] != "ok")
-                progress.update(ok, failed, 0)
-            progress.update(ok, failed, 0, final=True)
-        else:
-            ok, failed = run_pool(jobs, n_workers, sink.append, progress)
+    with ExitStack() as stack:
+        if todo:  # a finished sweep needs no workers, nor a reachable cluster
+            try:
+                stack.enter_context(runner)
+            except ExecutorError as exc:
+                raise loaded.error(("resources", exc.key), str(exc)) from None
+        write_resolved(loaded, out, trials)
+        stream.write(
+            f"{loaded.recipe.name}: {len(trials)} trials, {skipped} already done, {len(todo)} to run "
+            f"on {runner.describe()} -> {out}\n"
+        )
+        for note in runner.notes():
+            stream.write(f"note: {note}\n")
+        progress = Progress(len(trials), skipped, stream)
+        jobs = jobs_for(loaded, out, todo)
+        with store.open() as sink:
+            if jobs:
+                ok, failed = runner.run(jobs, sink.append, progress)
+            else:
+                ok = failed = 0
+                progress.update(0, 0, 0, final=True)
     return SweepSummary(len(trials), skipped, ok, failed, out)
