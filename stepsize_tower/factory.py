@@ -16,7 +16,10 @@ BASES: dict[str, Callable[..., TowerOptimizer]] = {"sgd": TowerSGD, "adam": Towe
 
 
 def make_tower(
-    params: Any, base: str = "adam", levels: Sequence[Level | str] | int | None = None, **base_kwargs: Any
+    params: Any,
+    base: str = "adam",
+    levels: Sequence[Level | str | dict[str, Any]] | int | None = None,
+    **base_kwargs: Any,
 ) -> TowerOptimizer:
     """Build a tower from a base name and its levels.
 

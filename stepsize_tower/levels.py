@@ -94,11 +94,12 @@ class Level:
             raise ValueError(f"Invalid level eps: {self.eps!r}; expected a finite number >= 0")
 
 
-def resolve_levels(depth: int | None, levels: Sequence[Level | str] | None) -> tuple[Level, ...]:
+def resolve_levels(depth: int | None, levels: Sequence[Level | str | dict[str, Any]] | None) -> tuple[Level, ...]:
     """Turn the ``depth`` / ``levels`` constructor arguments into a tuple of levels.
 
     ``levels`` wins when given (a string is a level kind with that kind's default
-    settings); ``depth`` alone gives the measured default levels
+    settings; a dict holds :class:`Level` fields, as read from JSON or YAML); ``depth``
+    alone gives the measured default levels
     (:func:`stepsize_tower.defaults.default_levels`); neither gives the default depth.
     Giving both requires ``len(levels) == depth``.
     """
@@ -116,6 +117,12 @@ def resolve_levels(depth: int | None, levels: Sequence[Level | str] | None) -> t
             resolved.append(lv)
         elif isinstance(lv, str) and lv in LEVEL_KINDS:
             resolved.append(Level(kind=lv))
+        elif isinstance(lv, dict):
+            unknown = sorted(set(lv) - {"kind", "lr", "betas", "eps"})
+            if unknown:
+                raise ValueError(f"Invalid levels[{i}]: unknown key(s) {unknown}; expected kind, lr, betas, eps")
+            fields: dict[str, Any] = {k: tuple(v) if k == "betas" else v for k, v in lv.items()}
+            resolved.append(Level(**fields))
         else:
             raise ValueError(
                 f"Invalid levels[{i}]: {lv!r}; expected a Level or one of {', '.join(map(repr, LEVEL_KINDS))}"

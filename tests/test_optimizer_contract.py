@@ -558,7 +558,18 @@ INVALID: list[tuple[str, Callable[[], Any], str]] = [
     ("granularity layer", lambda: TowerAdam(_p(), granularity="layer"), r"granularity.*'layer'.*'group'.*'tensor'"),
     ("granularity sgd", lambda: TowerSGD(_p(), granularity="layer"), r"granularity.*'layer'.*'group'.*'tensor'"),
     ("nesterov without momentum", lambda: TowerSGD(_p(), nesterov=True), r"(?i)nesterov.*momentum > 0"),
+    ("level dict unknown key", lambda: TowerAdam(_p(), levels=[{"kind": "adam", "rate": 0.1}]), r"levels\[0\].*'rate'"),
+    ("level dict bad lr", lambda: TowerAdam(_p(), levels=[{"kind": "adam", "lr": -1}]), r"level lr.*-1.*> 0"),
+    ("compiled not a bool", lambda: TowerAdamW(_p(), compiled=1), r"compiled.*1.*True or False"),
 ]
+
+
+def test_levels_given_as_dicts_equal_level_objects() -> None:
+    # Levels read from JSON or YAML arrive as dicts (betas as a list).
+    spec = {"kind": "adam", "lr": 0.03, "betas": [0.8, 0.99], "eps": 1e-20}
+    from_dict = TowerAdam(_p(), levels=[spec])
+    from_level = TowerAdam(_p(), levels=[Level(kind="adam", lr=0.03, betas=(0.8, 0.99), eps=1e-20)])
+    assert from_dict.param_groups[0]["levels"] == from_level.param_groups[0]["levels"]
 
 
 @pytest.mark.parametrize(("case", "build", "pattern"), INVALID, ids=[c for c, _, _ in INVALID])
