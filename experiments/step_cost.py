@@ -2,7 +2,8 @@
 
 What it measures
     * The median wall time (and interquartile range) of ``optimizer.step()`` alone for
-      torch ``Adam`` (foreach and fused), ``TowerAdam`` at depth 0-3, ``TowerAdamW``
+      torch ``Adam`` (foreach and fused), ``TowerAdam`` at depth 0-3 (and with
+      ``compiled=True`` where torch.compile works), ``TowerAdamW``
       (default depth), torch ``SGD(momentum=0.9)`` (foreach, and fused where torch
       supports it on this device) and ``TowerSGD(momentum=0.9)`` at depth 0 and the
       default depth. Parameters are float32, split like a model: a stack of square
@@ -68,7 +69,7 @@ import torch
 from torch import Tensor, nn
 
 import stepsize_tower
-from stepsize_tower import DEFAULT_DEPTH, TowerAdam, TowerAdamW, TowerSGD
+from stepsize_tower import DEFAULT_DEPTH, TowerAdam, TowerAdamW, TowerSGD, _compiled
 
 ADAM_LR = 1e-3
 MIN_REPEATS = 5
@@ -134,6 +135,8 @@ def optimizer_specs() -> list[Spec]:
         label = f"TowerAdam d{depth}" + (" (default)" if depth == DEFAULT_DEPTH else "")
         specs.append(Spec(label, "adam", lambda ps, d=depth: TowerAdam(ps, lr=ADAM_LR, depth=d)))
     specs.append(Spec(f"TowerAdamW d{DEFAULT_DEPTH} (default)", "adam", lambda ps: TowerAdamW(ps, lr=ADAM_LR)))
+    if _compiled.available():
+        specs.append(Spec("TowerAdam compiled=True", "adam", lambda ps: TowerAdam(ps, lr=ADAM_LR, compiled=True)))
     specs.append(
         Spec(
             "torch SGD foreach",
@@ -316,6 +319,8 @@ def bench_end_to_end(dims: list[int], batch: int, warmup: int, repeats: int, see
         "torch Adam foreach": lambda ps: torch.optim.Adam(ps, lr=ADAM_LR, foreach=True),
         f"TowerAdam d{DEFAULT_DEPTH} (default)": lambda ps: TowerAdam(ps, lr=ADAM_LR),
     }
+    if _compiled.available():
+        makers["TowerAdam compiled=True"] = lambda ps: TowerAdam(ps, lr=ADAM_LR, compiled=True)
     actions: dict[str, Callable[[], Any]] = {}
     opts = {}
     for name, make in makers.items():
@@ -364,6 +369,8 @@ def ratios_for(rows: dict[str, Any]) -> dict[str, float | None]:
         "TowerAdam default / torch Adam foreach": ratio(rows, tower, "torch Adam foreach"),
         "TowerAdam d0 / torch Adam fused": ratio(rows, find(names, "TowerAdam d0"), "torch Adam fused"),
         "TowerAdamW default / torch Adam fused": ratio(rows, find(names, "TowerAdamW"), "torch Adam fused"),
+        "TowerAdam compiled / torch Adam fused": ratio(rows, find(names, "TowerAdam compiled"), "torch Adam fused"),
+        "TowerAdam compiled / torch Adam foreach": ratio(rows, find(names, "TowerAdam compiled"), "torch Adam foreach"),
     }
     for k in range(3):
         lo, hi = find(names, f"TowerAdam d{k}"), find(names, f"TowerAdam d{k + 1}")

@@ -8,7 +8,7 @@ from typing import Any
 import torch
 from torch import Tensor
 
-from . import _chunks, _fused
+from . import _chunks, _compiled, _fused
 from ._docs import TOWER_ARGS
 from .defaults import DEFAULT_HORIZON, DEFAULT_HYPER_LEVEL
 from .levels import Level, resolve_levels
@@ -215,6 +215,75 @@ class AdamRule:
                 maximize=group["maximize"],
             )
 
+    # ------------------------------------------------------------ compiled trail (opt-in)
+
+    def _compiled_applies(self, group: dict[str, Any], params: list[Tensor], states: list[dict[str, Any]]) -> bool:
+        """``compiled=True``, one step size for the group, float32 CPU/CUDA tensors, and a compiler."""
+        return (
+            bool(group.get("compiled"))
+            and not group.get("learn_betas")
+            and group["granularity"] == "group"
+            and bool(params)
+            and all(p.dtype == torch.float32 and p.device.type in ("cpu", "cuda") for p in params)
+            and len({p.device for p in params}) == 1
+            and all("update_ema" in st for st in states)
+            and _compiled.available()
+        )
+
+    def trail_dot(
+        self, group: dict[str, Any], params: list[Tensor], grads: list[Tensor], states: list[dict[str, Any]]
+    ) -> Tensor | None:
+        """``Σ <g_s, E>`` over the group in one compiled read pass, or None where that does not apply."""
+        if not self._compiled_applies(group, params, states):
+            return None
+        return _compiled.two_pass_dot(
+            grads,
+            [st["update_ema"] for st in states],
+            params=params,
+            weight_decay=group["weight_decay"],
+            decoupled=self.decoupled,
+            maximize=group["maximize"],
+        )
+
+    def update_with_trail(
+        self,
+        group: dict[str, Any],
+        params: list[Tensor],
+        grads: list[Tensor],
+        states: list[dict[str, Any]],
+        a0: Tensor,
+        weight: float,
+    ) -> bool:
+        """The Adam step with step size ``a0`` and ``E <- (1 - weight) E + weight a0 d`` in one compiled pass.
+
+        Returns False (and changes nothing) where the compiled kernel does not apply; the
+        engine then takes torch's fused kernel plus the two trail passes.
+        """
+        for p, st in zip(params, states, strict=True):
+            self._init(p, st)
+        if not self._compiled_applies(group, params, states):
+            return False
+        beta1, beta2 = group["betas"]
+        steps = [st["step"] for st in states]
+        torch._foreach_add_(steps, 1)
+        _compiled.adam_trail_update(
+            params,
+            grads,
+            [st["exp_avg"] for st in states],
+            [st["exp_avg_sq"] for st in states],
+            [st["update_ema"] for st in states],
+            steps,
+            a0,
+            beta1,
+            beta2,
+            group["eps"],
+            group["weight_decay"],
+            self.decoupled,
+            group["maximize"],
+            weight,
+        )
+        return True
+
     def retreat(self, group: dict[str, Any], p: Tensor, state: dict[str, Any], a_prev: Tensor, a_new: Tensor) -> None:
         bc1, bc2s = _bias_corrections(group, state["step"])
         u = state["exp_avg"].div((state["exp_avg_sq"].sqrt() / bc2s.to(p.dtype)).add_(group["eps"]))
@@ -261,6 +330,12 @@ class TowerAdam(TowerOptimizer):
         learn_betas: learn β1 and β2 online as well, in logit space, with closed-form
             hypergradients (see :class:`AdamRule`); uses the unfused update (default: False).
         hyper_level: the :class:`Level` that learns the betas (default: Adam-like, lr 0.01).
+        compiled: run the step as two kernels compiled with ``torch.compile`` (a read pass
+            for the hypergradient, then one loop that updates weights, moments and the trail
+            together) instead of torch's fused kernel plus three passes. Same results up to
+            float32 rounding. The first step compiles (seconds); needs float32 parameters,
+            ``granularity="group"``, ``horizon > 0`` and a working inductor backend (a C++
+            compiler on CPU), and silently uses the default path otherwise (default: False).
 {TOWER_ARGS}
     """
 
@@ -276,7 +351,7 @@ class TowerAdam(TowerOptimizer):
         weight_decay: float | None = None,
         *,
         depth: int | None = None,
-        levels: Sequence[Level | str] | None = None,
+        levels: Sequence[Level | str | dict[str, Any]] | None = None,
         granularity: str = "group",
         retreat: bool = True,
         horizon: float | None = None,
@@ -285,6 +360,7 @@ class TowerAdam(TowerOptimizer):
         learn_betas: bool = False,
         hyper_level: Level | None = None,
         sharded: bool = False,
+        compiled: bool = False,
     ) -> None:
         if weight_decay is None:
             weight_decay = self._default_weight_decay
@@ -294,6 +370,8 @@ class TowerAdam(TowerOptimizer):
             raise ValueError(f"Invalid betas: {betas}; expected two numbers in [0, 1)")
         if learn_betas and not all(0.0 < b < 1.0 for b in betas):
             raise ValueError(f"learn_betas=True needs initial betas in (0, 1); got betas={betas}")
+        if not isinstance(compiled, bool):
+            raise ValueError(f"Invalid compiled: {compiled!r}; expected True or False")
         if not 0.0 <= weight_decay:
             raise ValueError(f"Invalid weight_decay value: {weight_decay}; expected weight_decay >= 0")
         defaults = {
@@ -310,6 +388,7 @@ class TowerAdam(TowerOptimizer):
             "learn_betas": learn_betas,
             "hyper_level": hyper_level or DEFAULT_HYPER_LEVEL,
             "sharded": sharded,
+            "compiled": compiled,
         }
         super().__init__(params, defaults)
 

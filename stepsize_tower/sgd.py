@@ -118,6 +118,24 @@ class SGDRule:
                     d = buf
             _move(p, d, a)
 
+    def trail_dot(
+        self, group: dict[str, Any], params: list[Tensor], grads: list[Tensor], states: list[dict[str, Any]]
+    ) -> Tensor | None:
+        """No compiled kernel for SGD: the engine takes the dot products itself."""
+        return None
+
+    def update_with_trail(
+        self,
+        group: dict[str, Any],
+        params: list[Tensor],
+        grads: list[Tensor],
+        states: list[dict[str, Any]],
+        a0: Tensor,
+        weight: float,
+    ) -> bool:
+        """No compiled kernel for SGD: the engine keeps the trail around the update."""
+        return False
+
     def retreat(self, group: dict[str, Any], p: Tensor, state: dict[str, Any], a_prev: Tensor, a_new: Tensor) -> None:
         mu = self._mu(group)
         if group["momentum"] == 0:
@@ -187,7 +205,7 @@ class TowerSGD(TowerOptimizer):
         weight_decay: float = 0.0,
         *,
         depth: int | None = None,
-        levels: Sequence[Level | str] | None = None,
+        levels: Sequence[Level | str | dict[str, Any]] | None = None,
         granularity: str = "group",
         retreat: bool = True,
         horizon: float | None = None,

@@ -144,6 +144,23 @@ class BaseRule(Protocol):
         """Move the weight back along its last direction: ``w <- w + (a_prev - a_new) d_{0,s-1}``."""
         ...
 
+    def trail_dot(
+        self, group: dict[str, Any], params: list[Tensor], grads: list[Tensor], states: list[dict[str, Any]]
+    ) -> Tensor | None:
+        """``Σ <g_s, E>`` over the whole group from a kernel of the base's own, or None to let the engine do it."""
+        ...
+
+    def update_with_trail(
+        self,
+        group: dict[str, Any],
+        params: list[Tensor],
+        grads: list[Tensor],
+        states: list[dict[str, Any]],
+        a0: Tensor,
+        weight: float,
+    ) -> bool:
+        """The update with one step size ``a0`` and ``E <- (1 - weight) E + weight Δ`` in one kernel; False if not."""
+
 
 def _levels_of(group: dict[str, Any]) -> tuple[Level, ...]:
     return tuple(Level(**spec) for spec in group["levels"])
@@ -422,13 +439,17 @@ class TowerOptimizer(Optimizer):
         if horizon > 0 and levels:
             # <g_s, D_{s-1}>: the gradient against the decaying trail of recent updates,
             # D = Σ_j γ^(s-1-j) Δ_j, kept as its moving average E = (1 - γ) D.
-            trail_dots = [
-                _chunks.dot(_chunks.flat(self._rule.loss_grad(group, p, g)), _chunks.flat(st["update_ema"]))
-                if "update_ema" in st
-                else zero
-                for p, g, st in zip(params, grads, states, strict=True)
-            ]
-            trail_u = per_unit(trail_dots)
+            fast = self._rule.trail_dot(group, params, grads, states)
+            if fast is not None:  # the base's compiled read pass (one step size for the group)
+                trail_u = fast.reshape(1).to(zero.device)
+            else:
+                trail_dots = [
+                    _chunks.dot(_chunks.flat(self._rule.loss_grad(group, p, g)), _chunks.flat(st["update_ema"]))
+                    if "update_ema" in st
+                    else zero
+                    for p, g, st in zip(params, grads, states, strict=True)
+                ]
+                trail_u = per_unit(trail_dots)
         # The largest gradient entry is only needed by the growth guard (SGD).
         guard = bool(group["retreat"]) and bool(levels) and not self._rule.normalized
         gmax = _grad_max(grads) if guard else None
@@ -529,6 +550,8 @@ class TowerOptimizer(Optimizer):
         for p, st in zip(params, states, strict=True):
             if "update_ema" not in st:
                 st["update_ema"] = torch.zeros_like(p, memory_format=torch.preserve_format)
+        if a0.shape[0] == 1 and self._rule.update_with_trail(group, params, grads, states, a0[0], 1.0 - horizon):
+            return
         _with_update_ema(
             [st["update_ema"] for st in states],
             params,
