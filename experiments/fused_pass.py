@@ -73,6 +73,9 @@ import stepsize_tower
 from stepsize_tower import TowerAdam
 from stepsize_tower import _compiled as C
 
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+from step_cost import cpu_model  # a sibling script, not a package
+
 BETA1, BETA2, EPS = 0.9, 0.999, 1e-8
 TRAIL_WEIGHT = 0.01  # 1 - horizon
 LR = 1e-3
@@ -475,17 +478,6 @@ def bench(n_params: int, seed: int, warmup: int, rounds: int) -> dict[str, Any]:
 
 
 # --------------------------------------------------------------------------- report
-
-
-def cpu_model() -> str:
-    try:
-        with open("/proc/cpuinfo") as f:
-            for line in f:
-                if line.startswith("model name"):
-                    return line.split(":", 1)[1].strip()
-    except OSError:
-        pass
-    return platform.processor() or "unknown"
 
 
 def gcc_version() -> str:
