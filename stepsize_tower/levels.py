@@ -27,6 +27,7 @@ produced in the same step. All state is float64 so that tiny hypergradients
 
 from __future__ import annotations
 
+import functools
 import math
 from collections.abc import Sequence
 from dataclasses import dataclass
@@ -177,6 +178,18 @@ def current_step_sizes(ts: dict[str, Tensor], levels: Sequence[Level], lr: float
     return out
 
 
+@functools.lru_cache(maxsize=256)
+def _level_constants(
+    levels: tuple[Level, ...], dtype: torch.dtype, device: torch.device
+) -> tuple[Tensor, Tensor, Tensor, Tensor]:
+    """Per-level ``beta1, beta2, eps`` and the "adam" mask as tensors (cached; never written to)."""
+    beta1 = torch.tensor([lv.betas[0] for lv in levels], dtype=dtype, device=device)
+    beta2 = torch.tensor([lv.betas[1] for lv in levels], dtype=dtype, device=device)
+    eps = torch.tensor([lv.eps for lv in levels], dtype=dtype, device=device)
+    is_adam = torch.tensor([lv.kind == "adam" for lv in levels], device=device)
+    return beta1, beta2, eps, is_adam
+
+
 def tower_step(
     ts: dict[str, Tensor],
     levels: Sequence[Level],
@@ -194,6 +207,17 @@ def tower_step(
     u = ts["log_step"]
     if d == 0:
         raise ValueError("tower_step needs at least one level; a depth-0 optimizer has nothing to learn")
+    if u.device.type == "cpu" and not torch.compiler.is_compiling():  # compiled: keep tensors (no guards on floats)
+        return _tower_step_host(ts, levels, update_dot, lr)
+    return _tower_step_tensors(ts, levels, update_dot, lr)
+
+
+def _tower_step_tensors(
+    ts: dict[str, Tensor], levels: Sequence[Level], update_dot: Tensor, lr: float | Tensor
+) -> Tensor:
+    """:func:`tower_step` as tensor operations: no host read (accelerators, compiled steps)."""
+    d = len(levels)
+    u = ts["log_step"]
     has_prev = ts["step"] > 0
     prev_step, prev_dir = ts["prev_step"], ts["prev_dir"]
 
@@ -204,10 +228,7 @@ def tower_step(
 
     # Each level's direction from its hypergradient.
     count = ts["step"]  # number of level updates so far == steps taken before this one
-    beta1 = torch.tensor([lv.betas[0] for lv in levels], dtype=u.dtype, device=u.device)
-    beta2 = torch.tensor([lv.betas[1] for lv in levels], dtype=u.dtype, device=u.device)
-    eps = torch.tensor([lv.eps for lv in levels], dtype=u.dtype, device=u.device)
-    is_adam = torch.tensor([lv.kind == "adam" for lv in levels], device=u.device)
+    beta1, beta2, eps, is_adam = _level_constants(tuple(levels), u.dtype, u.device)
     m = torch.lerp(ts["exp_avg"], hyper, 1 - beta1)
     v = beta2 * ts["exp_avg_sq"] + (1 - beta2) * hyper * hyper
     bc1 = 1 - beta1**count
@@ -232,3 +253,50 @@ def tower_step(
     prev_step.copy_(u.exp())
     prev_step[:, 0] *= lr
     return prev_step[:, 0].clone()
+
+
+def _tower_step_host(ts: dict[str, Tensor], levels: Sequence[Level], update_dot: Tensor, lr: float | Tensor) -> Tensor:
+    """:func:`tower_step` for state on the CPU, in Python floats (the same float64 math, not
+    tensor ops: a tower's few scalars cost more in per-op overhead than in arithmetic).
+
+    Agrees with the tensor path to rounding (``exp``/``log``/``pow`` may differ in the last bit).
+    """
+    d = len(levels)
+    u = ts["log_step"].tolist()
+    prev_step, prev_dir = ts["prev_step"].tolist(), ts["prev_dir"].tolist()
+    exp_avg, exp_avg_sq = ts["exp_avg"].tolist(), ts["exp_avg_sq"].tolist()
+    count = float(ts["step"])
+    lr_value = float(lr)
+    if count > 0:
+        hyper_all = []
+        for unit, h1 in enumerate(update_dot.tolist()):
+            hyper, scale = [], -h1
+            for k in range(d):
+                if k:
+                    scale *= -prev_dir[unit][k - 1] * prev_step[unit][k]
+                hyper.append(min(max(scale, -HYPERGRAD_BOUND), HYPERGRAD_BOUND))
+            direction = []
+            for k, lv in enumerate(levels):
+                h, (b1, b2) = hyper[k], lv.betas
+                m = exp_avg[unit][k] + (1 - b1) * (h - exp_avg[unit][k])
+                v = b2 * exp_avg_sq[unit][k] + (1 - b2) * h * h
+                exp_avg[unit][k], exp_avg_sq[unit][k] = m, v
+                if lv.kind == "adam":
+                    direction.append((m / (1 - b1**count)) / (math.sqrt(v / (1 - b2**count)) + lv.eps))
+                else:
+                    direction.append(h)
+            step_k = levels[-1].lr
+            for k in range(d, 0, -1):
+                change = min(max(step_k * direction[k - 1], -MAX_LOG_CHANGE), MAX_LOG_CHANGE)
+                u[unit][k - 1] = min(max(u[unit][k - 1] - change, -LOG_STEP_BOUND), LOG_STEP_BOUND)
+                step_k = math.exp(u[unit][k - 1])
+            prev_dir[unit] = direction
+            hyper_all.append(hyper)
+        for key, rows in (("log_step", u), ("exp_avg", exp_avg), ("exp_avg_sq", exp_avg_sq), ("prev_dir", prev_dir)):
+            ts[key].copy_(torch.tensor(rows, dtype=_STATE_DTYPE))
+        ts["hypergrad"].copy_(torch.tensor(hyper_all, dtype=_STATE_DTYPE))
+    steps = [[math.exp(x) for x in row] for row in u]
+    for row in steps:
+        row[0] *= lr_value
+    ts["prev_step"].copy_(torch.tensor(steps, dtype=_STATE_DTYPE))
+    return ts["prev_step"][:, 0].clone()

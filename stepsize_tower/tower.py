@@ -44,6 +44,7 @@ default, and without an initialized process group it does nothing: no collective
 
 from __future__ import annotations
 
+import functools
 import math
 from collections.abc import Callable, Iterable, Sequence
 from typing import Any, Protocol
@@ -163,7 +164,14 @@ class BaseRule(Protocol):
 
 
 def _levels_of(group: dict[str, Any]) -> tuple[Level, ...]:
-    return tuple(Level(**spec) for spec in group["levels"])
+    specs = group["levels"]
+    return _levels_from(tuple((s["kind"], s["lr"], tuple(s["betas"]), s["eps"]) for s in specs))
+
+
+@functools.lru_cache(maxsize=256)
+def _levels_from(key: tuple[tuple[str, float, tuple[float, ...], float], ...]) -> tuple[Level, ...]:
+    """The (validated, immutable) levels of a group's specs; cached: a step needs them every time."""
+    return tuple(Level(kind=k, lr=lr, betas=(betas[0], betas[1]), eps=eps) for k, lr, betas, eps in key)
 
 
 def _level_spec(level: Level | dict[str, Any]) -> dict[str, Any]:
@@ -405,13 +413,18 @@ class TowerOptimizer(Optimizer):
             return
 
         units = ts["log_step"].shape[0]
-        unit_of = [i for i, _ in indexed] if group["granularity"] == "tensor" else [0] * len(params)
-        unit_index = torch.tensor(unit_of, device=ts["step"].device)
+        per_tensor = group["granularity"] == "tensor"
+        unit_of = [i for i, _ in indexed] if per_tensor else [0] * len(params)
+        unit_index = torch.tensor(unit_of, device=ts["step"].device) if per_tensor else None
 
         def per_unit(values: Iterable[Tensor]) -> Tensor:
-            out = torch.zeros(units, dtype=torch.float64, device=unit_index.device)
             listed = list(values)
-            return out.index_add_(0, unit_index, torch.stack(listed).double()) if listed else out
+            if not listed:
+                return torch.zeros(units, dtype=torch.float64, device=ts["step"].device)
+            if unit_index is None:  # one unit: the group
+                return torch.stack(listed).sum().double().reshape(1)
+            out = torch.zeros(units, dtype=torch.float64, device=unit_index.device)
+            return out.index_add_(0, unit_index, torch.stack(listed).double())
 
         lr0 = torch.as_tensor(group["lr"], dtype=torch.float64, device=ts["step"].device).reshape(1)
         a_prev = ts["prev_step"][:, 0] if levels else ts.get("prev_lr", lr0).expand(units)
