@@ -8,7 +8,7 @@ from typing import Any
 import torch
 from torch import Tensor
 
-from . import _chunks
+from . import _chunks, _fused
 from ._docs import TOWER_ARGS
 from .defaults import DEFAULT_HYPER_LEVEL, default_horizon
 from .levels import Level, resolve_levels
@@ -95,6 +95,8 @@ class SGDRule:
         mu, damp = self._mu(group), group["dampening"]
         keep_grad = bool(group["levels"]) and self._keeps_previous_grad(group)
         learn = bool(group.get("learn_momentum"))
+        if not learn and self._fused_update(group, params, grads, states, step_sizes, keep_grad):
+            return
         for p, grad, state, a in zip(params, grads, states, step_sizes, strict=True):
             g = _grad(group, p, grad)
             if keep_grad:
@@ -117,6 +119,53 @@ class SGDRule:
                 else:
                     d = buf
             _move(p, d, a)
+
+    @staticmethod
+    def _fused_update(
+        group: dict[str, Any],
+        params: list[Tensor],
+        grads: list[Tensor],
+        states: list[dict[str, Any]],
+        step_sizes: Sequence[Tensor | float],
+        keep_grad: bool,
+    ) -> bool:
+        """torch's fused SGD kernel, one call per distinct step size; False where it does not apply.
+
+        It applies when ``fused`` is not False, the parameters share one CPU/CUDA float
+        dtype and device, and the momentum buffers are all present or all absent (the
+        kernel's first step initializes them all, as ``torch.optim.SGD`` does).
+        """
+        if not _fused.fused_applies(group, params):
+            return False
+        momentum = group["momentum"]
+        bufs: list[Tensor] = []
+        first = False
+        if momentum != 0:
+            present = [st.get("momentum_buffer") for st in states]
+            first = all(b is None for b in present)
+            if not first and any(b is None for b in present):
+                return False
+            if first:
+                for st, g in zip(states, grads, strict=True):
+                    st["momentum_buffer"] = torch.empty_like(g, memory_format=torch.preserve_format)
+            bufs = [st["momentum_buffer"] for st in states]
+        if keep_grad:
+            for p, grad, st in zip(params, grads, states, strict=True):
+                _keep(st, "prev_grad", _grad(group, p, grad))
+        for lr, idx in _fused.by_step_size(step_sizes):
+            torch._fused_sgd_(
+                [params[i] for i in idx],
+                [grads[i] for i in idx],
+                [bufs[i] for i in idx] if bufs else [],
+                weight_decay=group["weight_decay"],
+                momentum=momentum,
+                lr=lr,
+                dampening=group["dampening"],
+                nesterov=group["nesterov"],
+                maximize=group["maximize"],
+                is_first_step=first,
+            )
+        return True
 
     def trail_dot(
         self, group: dict[str, Any], params: list[Tensor], grads: list[Tensor], states: list[dict[str, Any]]
@@ -192,6 +241,9 @@ class TowerSGD(TowerOptimizer):
         learn_momentum: learn μ online as well, in logit space, with the closed-form
             hypergradient ``-a_0 <g_s, ∂d_{{0,s-1}}/∂μ>`` (default: False).
         hyper_level: the :class:`Level` that learns μ (default: Adam-like, lr 0.01).
+        fused: use torch's fused SGD kernel for the update; None picks it when the
+            parameters allow (one CPU/CUDA float dtype and device; not with
+            ``learn_momentum``) (default: None).
 {TOWER_ARGS}
     """
 
@@ -213,7 +265,10 @@ class TowerSGD(TowerOptimizer):
         learn_momentum: bool = False,
         hyper_level: Level | None = None,
         sharded: bool = False,
+        fused: bool | None = None,
     ) -> None:
+        if fused is not None and not isinstance(fused, bool):
+            raise ValueError(f"Invalid fused: {fused!r}; expected True, False or None")
         if learn_momentum and not 0.0 < momentum < 1.0:
             raise ValueError(f"learn_momentum=True needs an initial momentum in (0, 1); got momentum={momentum}")
         if not 0.0 <= momentum < 1.0:
@@ -238,6 +293,7 @@ class TowerSGD(TowerOptimizer):
             "learn_momentum": learn_momentum,
             "hyper_level": hyper_level or DEFAULT_HYPER_LEVEL,
             "sharded": sharded,
+            "fused": fused,
         }
         super().__init__(params, defaults)
 
