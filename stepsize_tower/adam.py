@@ -174,8 +174,12 @@ class AdamRule:
         v_hat = v / bc2
         dv = (v_old - g * g) / bc2 + v * (t * beta2 ** (t - 1) / bc2**2)
         sqrt_v = v_hat.sqrt()
-        t1 = dm / denom
-        t2 = torch.where(sqrt_v > 0, -(m / bc1) / denom**2 * dv / (2 * sqrt_v), torch.zeros_like(v))
+        # At t = 1 the bias corrections make d_1 = g / (|g| + eps) whatever the betas: both
+        # tangents are exactly 0, and the closed forms leave only rounding noise (~1e-18),
+        # whose sign a normalized hyper level would turn into a full-size move.
+        first = t <= 1
+        t1 = torch.where(first, torch.zeros_like(v), dm / denom)
+        t2 = torch.where(first | (sqrt_v <= 0), torch.zeros_like(v), -(m / bc1) / denom**2 * dv / (2 * sqrt_v))
         for key, value in (("beta1_tangent", t1), ("beta2_tangent", t2)):
             if key in st:
                 st[key].copy_(value)

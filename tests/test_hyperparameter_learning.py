@@ -167,3 +167,26 @@ def test_learn_momentum_requires_momentum_in_open_interval():
 def test_learn_betas_requires_betas_in_open_interval():
     with pytest.raises(ValueError, match="betas"):
         TowerAdam([torch.zeros(2, requires_grad=True)], betas=(0.0, 0.9), learn_betas=True)
+
+
+def test_betas_do_not_move_on_the_exactly_zero_first_tangent() -> None:
+    # Reference: Adam's bias correction (Kingma & Ba, ICLR 2015, Algorithm 1) makes
+    # m̂_1 = g_1 and v̂_1 = g_1², so d_1 does not depend on β1 or β2: the hypergradient of the
+    # betas at step 2 is exactly 0, and the learned betas must not move there. (The closed
+    # forms leave rounding noise ~1e-18 whose sign a normalized level would turn into a move.)
+    torch.manual_seed(0)
+    w = torch.nn.Parameter(torch.randn(50, dtype=torch.float32))
+    opt = TowerAdam([w], lr=1e-2, learn_betas=True)
+    seen = []
+    for _ in range(2):
+        opt.zero_grad()
+        (w.pow(3).sum() + (w * torch.linspace(-1, 1, 50)).sum()).backward()
+        opt.step()
+        seen.append(opt.hyperparameters()[0])
+    assert seen[1] == seen[0]  # bitwise: no move at step 2
+    assert seen[0]["beta1"] == pytest.approx(0.9, rel=1e-15)
+    assert seen[0]["beta2"] == pytest.approx(0.999, rel=1e-15)
+    opt.zero_grad()
+    (w.pow(3).sum()).backward()
+    opt.step()
+    assert opt.hyperparameters()[0] != seen[1]  # from step 3 on, they learn
