@@ -56,7 +56,6 @@ import gc
 import json
 import math
 import os
-import platform
 import re
 import statistics
 import subprocess
@@ -69,12 +68,11 @@ from typing import Any
 import torch
 from torch import Tensor, nn
 
-import stepsize_tower
 from stepsize_tower import TowerAdam
 from stepsize_tower import _compiled as C
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
-from step_cost import cpu_model  # a sibling script, not a package
+from step_cost import environment  # a sibling script, not a package
 
 BETA1, BETA2, EPS = 0.9, 0.999, 1e-8
 TRAIL_WEIGHT = 0.01  # 1 - horizon
@@ -580,12 +578,7 @@ def main(argv: list[str] | None = None) -> dict[str, Any]:
         args.sizes, args.rounds, args.warmup = [1e5, 3e5], 5, 1
     report: dict[str, Any] = {
         "environment": {
-            "torch": torch.__version__,
-            "stepsize_tower": stepsize_tower.__version__,
-            "python": platform.python_version(),
-            "threads": torch.get_num_threads(),
-            "cpu_count": os.cpu_count(),
-            "cpu_model": cpu_model(),
+            **environment(),
             "gcc": gcc_version(),
             "loadavg": " ".join(f"{x:.2f}" for x in os.getloadavg()),
             "compiled": C.available(),
