@@ -10,6 +10,7 @@ from torch import Tensor
 
 from . import _chunks, _compiled, _fused
 from ._docs import TOWER_ARGS
+from ._state import keep
 from .defaults import DEFAULT_HORIZON, DEFAULT_HYPER_LEVEL
 from .levels import Level, resolve_levels
 from .tower import TowerOptimizer
@@ -180,11 +181,8 @@ class AdamRule:
         first = t <= 1
         t1 = torch.where(first, torch.zeros_like(v), dm / denom)
         t2 = torch.where(first | (sqrt_v <= 0), torch.zeros_like(v), -(m / bc1) / denom**2 * dv / (2 * sqrt_v))
-        for key, value in (("beta1_tangent", t1), ("beta2_tangent", t2)):
-            if key in st:
-                st[key].copy_(value)
-            else:
-                st[key] = value.to(g.dtype)
+        keep(st, "beta1_tangent", t1, g.dtype)
+        keep(st, "beta2_tangent", t2, g.dtype)
 
     def _use_fused(self, group: dict[str, Any], params: list[Tensor]) -> bool:
         return not group.get("learn_betas") and _fused.fused_applies(group, params)

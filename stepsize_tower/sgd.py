@@ -10,6 +10,7 @@ from torch import Tensor
 
 from . import _chunks, _fused
 from ._docs import TOWER_ARGS
+from ._state import keep
 from .defaults import DEFAULT_HYPER_LEVEL, default_horizon
 from .levels import Level, resolve_levels
 from .tower import TowerOptimizer
@@ -100,17 +101,17 @@ class SGDRule:
         for p, grad, state, a in zip(params, grads, states, step_sizes, strict=True):
             g = _grad(group, p, grad)
             if keep_grad:
-                _keep(state, "prev_grad", g)
+                keep(state, "prev_grad", g)
             d = g
             if group["momentum"] != 0:
                 buf = state.get("momentum_buffer")
                 if buf is None:
                     buf = state["momentum_buffer"] = g.detach().clone()
                     if learn:
-                        _keep(state, "momentum_tangent", torch.zeros_like(g))
+                        keep(state, "momentum_tangent", torch.zeros_like(g))
                 else:
                     if learn:
-                        _keep(state, "momentum_tangent", buf)  # ∂buf_s/∂μ = buf_{s-1}
+                        keep(state, "momentum_tangent", buf)  # ∂buf_s/∂μ = buf_{s-1}
                     buf.mul_(mu).add_(g, alpha=1 - damp)
                 if group["nesterov"]:
                     d = g + mu * buf
@@ -151,7 +152,7 @@ class SGDRule:
             bufs = [st["momentum_buffer"] for st in states]
         if keep_grad:
             for p, grad, st in zip(params, grads, states, strict=True):
-                _keep(st, "prev_grad", _grad(group, p, grad))
+                keep(st, "prev_grad", _grad(group, p, grad))
         for lr, idx in _fused.by_step_size(step_sizes):
             torch._fused_sgd_(
                 [params[i] for i in idx],
@@ -194,15 +195,6 @@ class SGDRule:
         else:
             d = state["momentum_buffer"]
         p.add_(d * (a_prev - a_new).to(d.dtype))
-
-
-def _keep(state: dict[str, Any], key: str, value: Tensor) -> None:
-    """``state[key] = value`` into a persistent buffer (allocated on first use)."""
-    buf = state.get(key)
-    if buf is None:
-        state[key] = value.detach().clone(memory_format=torch.preserve_format)
-    else:
-        buf.copy_(value)
 
 
 def _move(p: Tensor, d: Tensor, a: Tensor | float) -> None:
