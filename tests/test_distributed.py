@@ -75,13 +75,6 @@ _OPTIMIZERS: dict[str, tuple[type, dict[str, Any]]] = {
 }
 
 
-#: Learned betas amplify float noise: at the second step the tangent dot products are ~1e-18
-#: (zero up to rounding) and the Adam-like hyper level turns their sign into a full-size move,
-#: so the full-batch gradient and the mean of the two half-batch gradients (what DDP computes)
-#: end 6e-4 apart. Its reference therefore forms the global-batch gradient as that mean.
-_HALVES = {"adam_betas"}
-
-
 def _reference(kind: str) -> dict[str, Any]:
     """Reference: single-process run of the same optimizer on the same global batch."""
     cls, kw = _OPTIMIZERS[kind]
@@ -89,12 +82,7 @@ def _reference(kind: str) -> dict[str, Any]:
     opt = cls(_groups(model), **kw)
     for batch in _batches():
         opt.zero_grad()
-        if kind in _HALVES:
-            for rank in range(WORLD):
-                x, y = _local(batch, rank)
-                (nn.functional.mse_loss(model(x), y) / WORLD).backward()
-        else:
-            nn.functional.mse_loss(model(batch[0]), batch[1]).backward()
+        nn.functional.mse_loss(model(batch[0]), batch[1]).backward()
         opt.step()
     return {"sizes": opt.step_sizes(), "weights": [p.detach().clone() for p in model.parameters()]}
 
