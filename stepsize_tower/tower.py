@@ -35,11 +35,14 @@ each step; all learned values stay tensors.
 
 Sharded parameters (``sharded=True``): under ``ZeroRedundancyOptimizer`` or FSDP2 each rank
 holds only part of a group, so every dot product above is a partial sum. Before anything is
-decided, :func:`_reduce_across_ranks` sums them over the default process group (one
+decided, :func:`_reduce_across_ranks` sums them over the group's sharding ranks (one
 all-reduce of a packed float64 vector; a second one takes the maximum of the largest gradient
 entry when the SGD growth guard needs it), so every rank skips, retreats and learns the same
-step sizes. A rank that holds no parameter of the group still takes part (with zeros). Off by
-default, and without an initialized process group it does nothing: no collective is called.
+step sizes. The sharding ranks are the default process group for ZeRO, the mesh's group for
+FSDP2, and only the sharding dimension's group under HSDP (a 2-D mesh whose other dimension
+replicates: replicas hold the same shard) (:func:`_shard_group`). A rank that holds no
+parameter of the group still takes part (with zeros). Off by default, and without an
+initialized process group it does nothing: no collective is called.
 """
 
 from __future__ import annotations
@@ -475,7 +478,9 @@ class TowerOptimizer(Optimizer):
             local_finite = local_finite & _grads_finite(grads)
         if sharded:  # partial sums over this rank's parameters: complete them before deciding
             sums = [dot_u, slope_u, trail_u, tangent_dots]
-            count, local_finite, reduced, gmax_all = _reduce_across_ranks(len(params), local_finite, sums, gmax)
+            count, local_finite, reduced, gmax_all = _reduce_across_ranks(
+                len(params), local_finite, sums, gmax, _shard_group(group["params"])
+            )
             if count == 0:
                 return  # no rank had a gradient in this group
             dot_u, slope_u = reduced[0], reduced[1]  # type: ignore[assignment]  # never None
@@ -584,7 +589,7 @@ class TowerOptimizer(Optimizer):
         """Depth 0, nothing learned: the base optimizer itself, with non-finite steps skipped."""
         finite = _grads_finite(grads) if grads else torch.ones((), dtype=torch.bool)
         if sharded:
-            count, finite, _, _ = _reduce_across_ranks(len(params), finite, [], None)
+            count, finite, _, _ = _reduce_across_ranks(len(params), finite, [], None, _shard_group(group["params"]))
             if count == 0:
                 return
         if not bool(finite):
@@ -652,10 +657,34 @@ def _local_shard_of(value: Any, p: Any) -> Tensor:
     return value.to_local()  # type: ignore[no-any-return]
 
 
+def _shard_group(params: list[Tensor]) -> Any:
+    """The process group over which a parameter group is sharded; None for the default group.
+
+    FSDP2 parameters are DTensors: on a 1-D mesh the mesh's group; on a 2-D mesh that shards
+    along one dimension and replicates along the other (HSDP), the group of the sharding
+    dimension only, since replicas hold the same shard and summing over them would count each
+    shard once per replica. Plain tensors (ZeroRedundancyOptimizer): the default group.
+    """
+    for p in params:
+        if not _is_dtensor(p):
+            continue
+        mesh, placements = p.device_mesh, p.placements  # type: ignore[attr-defined]
+        if mesh.ndim == 1:
+            return mesh.get_group()
+        shard_dims = [i for i, pl in enumerate(placements) if pl.is_shard()]
+        if len(shard_dims) != 1 or not all(pl.is_replicate() for i, pl in enumerate(placements) if i != shard_dims[0]):
+            raise RuntimeError(
+                f"sharded=True supports DTensor parameters sharded along one mesh dimension (FSDP2, "
+                f"HSDP); got placements {tuple(placements)} on a {mesh.ndim}-D mesh"
+            )
+        return mesh.get_group(shard_dims[0])
+    return None
+
+
 def _reduce_across_ranks(
-    count: int, finite: Tensor, sums: list[Tensor | None], gmax: Tensor | None
+    count: int, finite: Tensor, sums: list[Tensor | None], gmax: Tensor | None, group: Any = None
 ) -> tuple[int, Tensor, list[Tensor | None], Tensor | None]:
-    """Complete this rank's partial values over the default process group (``sharded=True``).
+    """Complete this rank's partial values over ``group`` (default: the default process group).
 
     ``count`` (parameters with a gradient here), the flag ``not finite`` and every tensor of
     ``sums`` (``None`` entries are passed through) are packed into ONE float64 vector and
@@ -668,7 +697,7 @@ def _reduce_across_ranks(
     present = [s for s in sums if s is not None]
     head = torch.stack([torch.tensor(float(count), dtype=torch.float64), (~finite).double().cpu()]).to(device)
     packed = torch.cat([head] + [s.reshape(-1).double().to(device) for s in present])
-    dist.all_reduce(packed, op=dist.ReduceOp.SUM)
+    dist.all_reduce(packed, op=dist.ReduceOp.SUM, group=group)
     out: list[Tensor | None] = []
     offset = 2
     for s in sums:
@@ -680,7 +709,7 @@ def _reduce_across_ranks(
     gmax_all = None
     if gmax is not None:
         gmax_all = gmax.detach().double().reshape(1).clone()
-        dist.all_reduce(gmax_all, op=dist.ReduceOp.MAX)
+        dist.all_reduce(gmax_all, op=dist.ReduceOp.MAX, group=group)
         gmax_all = gmax_all.reshape(())
     return int(packed[0]), packed[1] == 0, out, gmax_all
 

@@ -19,7 +19,7 @@ import pytest
 import torch
 from torch import nn
 
-from stepsize_tower import TowerAdam, TowerSGD
+from stepsize_tower import Level, TowerAdam, TowerSGD
 
 dist = torch.distributed
 
@@ -50,11 +50,13 @@ def _batches() -> list[tuple[torch.Tensor, torch.Tensor]]:
     ]  # fmt: skip
 
 
-def _local(batch: tuple[torch.Tensor, torch.Tensor], rank: int) -> tuple[torch.Tensor, torch.Tensor]:
-    """This rank's half of the global batch (DDP averages the two halves' gradients)."""
-    half = GLOBAL_BATCH // WORLD
+def _local(
+    batch: tuple[torch.Tensor, torch.Tensor], rank: int, world: int = WORLD
+) -> tuple[torch.Tensor, torch.Tensor]:
+    """This rank's part of the global batch (DDP / FSDP average the parts' gradients)."""
+    part = GLOBAL_BATCH // world
     x, y = batch
-    return x[rank * half : (rank + 1) * half], y[rank * half : (rank + 1) * half]
+    return x[rank * part : (rank + 1) * part], y[rank * part : (rank + 1) * part]
 
 
 def _groups(model: nn.Module) -> list[dict[str, Any]]:
@@ -72,6 +74,9 @@ _OPTIMIZERS: dict[str, tuple[type, dict[str, Any]]] = {
     "adam_betas": (TowerAdam, {"lr": 1e-2, "learn_betas": True}),
     # SGD with momentum at a typed step size 30x too large: it retreats at steps 5-7 and 13.
     "sgd_retreats": (TowerSGD, {"lr": 0.3, "momentum": 0.9}),
+    # An SGD-like level: its step is proportional to the hypergradient, so a dot product
+    # counted twice (once per replica) would show in the step size.
+    "adam_sgd_level": (TowerAdam, {"lr": 1e-2, "levels": [Level("sgd", lr=10.0)]}),
 }
 
 
@@ -87,19 +92,21 @@ def _reference(kind: str) -> dict[str, Any]:
     return {"sizes": opt.step_sizes(), "weights": [p.detach().clone() for p in model.parameters()]}
 
 
-def _train(model: nn.Module, opt: Any, rank: int, steps: list[tuple[torch.Tensor, torch.Tensor]]) -> None:
+def _train(
+    model: nn.Module, opt: Any, rank: int, steps: list[tuple[torch.Tensor, torch.Tensor]], world: int = WORLD
+) -> None:
     for batch in steps:
-        x, y = _local(batch, rank)
+        x, y = _local(batch, rank, world)
         opt.zero_grad()
         nn.functional.mse_loss(model(x), y).backward()
         opt.step()
 
 
-def _entry(rank: int, port: int, worker: str, out: str, args: tuple[Any, ...]) -> None:
+def _entry(rank: int, port: int, worker: str, out: str, args: tuple[Any, ...], world: int = WORLD) -> None:
     os.environ["MASTER_ADDR"] = "127.0.0.1"
     os.environ["MASTER_PORT"] = str(port)
     torch.set_num_threads(1)
-    dist.init_process_group("gloo", rank=rank, world_size=WORLD)
+    dist.init_process_group("gloo", rank=rank, world_size=world)
     try:
         result = globals()[worker](rank, *args)
         torch.save(result, Path(out) / f"rank{rank}.pt")
@@ -120,9 +127,11 @@ def _free_port() -> int:
         return int(s.getsockname()[1])
 
 
-def _spawn(tmp_path: Path, worker: str, *args: Any) -> list[dict[str, Any]]:
-    torch.multiprocessing.spawn(_entry, args=(_free_port(), worker, str(tmp_path), args), nprocs=WORLD, join=True)
-    return [torch.load(tmp_path / f"rank{r}.pt", weights_only=False) for r in range(WORLD)]
+def _spawn(tmp_path: Path, worker: str, *args: Any, world: int = WORLD) -> list[dict[str, Any]]:
+    torch.multiprocessing.spawn(
+        _entry, args=(_free_port(), worker, str(tmp_path), args, world), nprocs=world, join=True
+    )
+    return [torch.load(tmp_path / f"rank{r}.pt", weights_only=False) for r in range(world)]
 
 
 def _assert_close(a: Any, b: Any, tol: float = TOL) -> None:
@@ -202,6 +211,21 @@ def _fsdp_worker(rank: int, kind: str) -> dict[str, Any]:
     fully_shard(model)
     opt = cls(_groups(model), sharded=True, **kw)
     _train(model, opt, rank, _batches())
+    weights = [p.full_tensor().detach().clone() for p in model.parameters()]
+    return {"ref": ref, "sizes": opt.step_sizes(), "weights": weights}
+
+
+def _hsdp_worker(rank: int, kind: str) -> dict[str, Any]:
+    """4 ranks: a 2 x 2 mesh, replicated along dimension 0, sharded along dimension 1 (HSDP)."""
+    from torch.distributed.device_mesh import init_device_mesh
+    from torch.distributed.fsdp import fully_shard
+
+    ref = _reference(kind)
+    cls, kw = _OPTIMIZERS[kind]
+    model = _model()
+    fully_shard(model, mesh=init_device_mesh("cpu", (2, 2), mesh_dim_names=("replicate", "shard")))
+    opt = cls(_groups(model), sharded=True, **kw)
+    _train(model, opt, rank, _batches(), world=4)
     weights = [p.full_tensor().detach().clone() for p in model.parameters()]
     return {"ref": ref, "sizes": opt.step_sizes(), "weights": weights}
 
@@ -393,6 +417,19 @@ def test_fsdp2_full_checkpoint_resumes_in_one_process(fsdp_resume: list[dict[str
         assert (opt.skipped_steps(), opt.retreats()) == (straight["skipped"], straight["retreats"])
         for w, ref in zip(model.parameters(), straight["weights"], strict=True):
             _assert_close(w.detach(), ref)
+
+
+@pytest.mark.parametrize("kind", ["adam", "adam_sgd_level"])
+def test_hsdp_sums_over_the_shard_group_only(tmp_path: Path, kind: str) -> None:
+    """HSDP (2 replicas x 2 shards): replicas hold the same shard, so the dot products are
+    summed over the sharding dimension only; all 4 ranks equal the single-process run."""
+    results = _spawn(tmp_path, "_hsdp_worker", kind, world=4)
+    for r in results[1:]:
+        assert r["sizes"] == results[0]["sizes"]  # bitwise across ranks
+    # reference: single-process run on the same global batch
+    _assert_close(_flat_sizes(results[0]["sizes"]), _flat_sizes(results[0]["ref"]["sizes"]))
+    for w, ref in zip(results[0]["weights"], results[0]["ref"]["weights"], strict=True):
+        _assert_close(w, ref)
 
 
 def test_sharded_option_is_validated_and_inert_without_process_group() -> None:
