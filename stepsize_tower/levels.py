@@ -63,6 +63,10 @@ LOG_STEP_BOUND = 69.0
 
 _STATE_DTYPE = torch.float64
 
+#: Up to this many learned step sizes (units x levels) on the CPU, the level arithmetic runs
+#: in Python floats; above it, as tensor operations.
+HOST_MATH_MAX = 8
+
 
 @dataclass(frozen=True)
 class Level:
@@ -207,7 +211,10 @@ def tower_step(
     u = ts["log_step"]
     if d == 0:
         raise ValueError("tower_step needs at least one level; a depth-0 optimizer has nothing to learn")
-    if u.device.type == "cpu" and not torch.compiler.is_compiling():  # compiled: keep tensors (no guards on floats)
+    # A few scalars on the CPU: Python floats beat ~40 tiny tensor ops (measured: 30 vs 135 us
+    # for one step size; the loop loses from about 15 step sizes on, e.g. granularity="tensor").
+    # Compiled steps keep tensors: no graph breaks, no guards on float values.
+    if u.device.type == "cpu" and u.numel() <= HOST_MATH_MAX and not torch.compiler.is_compiling():
         return _tower_step_host(ts, levels, update_dot, lr)
     return _tower_step_tensors(ts, levels, update_dot, lr)
 
