@@ -25,7 +25,7 @@ from typing import Any
 import torch
 from torch import Tensor, nn
 
-from ..tasks.base import LossFn, TaskInstance, epoch_batches, whole_set_loss
+from ..tasks.base import LossFn, TaskInstance, supervised_instance
 from ..tasks.compose import LOSSES
 
 __all__ = ["CONTRACT", "UserTaskError", "build_user_task", "import_function"]
@@ -117,16 +117,17 @@ def build_user_task(
         raise UserTaskError(f"'metrics' must map names to callables metric(model) -> float; {CONTRACT}")
     if batch_size > xs.shape[0]:
         raise UserTaskError(f"batch_size {batch_size} is larger than the {xs.shape[0]} training rows")
-    return TaskInstance(
-        name=target,
-        model=model,
-        batches=epoch_batches(xs, ys, batch_size, seed),
-        loss_fn=loss_fn,
-        full_train_loss=whole_set_loss(loss_fn, xs, ys),
-        test_loss=whole_set_loss(loss_fn, xt, yt),
-        default_steps=steps,
-        metrics=dict(metrics),
-        steps_per_epoch=xs.shape[0] // batch_size,
+    return supervised_instance(
+        target,
+        model,
+        loss_fn,
+        (xs, ys),
+        (xt, yt),
+        batch_size=batch_size,
+        seed=seed,
+        steps=steps,
+        metrics=metrics,
+        epochs=True,
     )
 
 

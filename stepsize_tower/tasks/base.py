@@ -8,7 +8,7 @@ data in identical order.
 
 from __future__ import annotations
 
-from collections.abc import Callable, Iterator
+from collections.abc import Callable, Iterator, Mapping
 from dataclasses import dataclass, field
 
 import torch
@@ -22,6 +22,7 @@ __all__ = [
     "epoch_batches",
     "seeded_module",
     "split_indices",
+    "supervised_instance",
     "whole_set_loss",
 ]
 
@@ -125,3 +126,36 @@ def whole_set_loss(loss_fn: LossFn, x: Tensor, y: Tensor, chunk: int = 4096) -> 
         return total / count
 
     return evaluate
+
+
+def supervised_instance(
+    name: str,
+    model: nn.Module,
+    loss_fn: LossFn,
+    train: Batch,
+    test: Batch,
+    *,
+    batch_size: int,
+    seed: int,
+    steps: int = 300,
+    metrics: Mapping[str, Callable[[nn.Module], float]] | None = None,
+    epochs: bool = False,
+) -> TaskInstance:
+    """A task on a fixed labelled set: seeded minibatches of ``train``, whole-set losses of both.
+
+    ``epochs`` sets ``steps_per_epoch`` (full minibatches per pass over ``train``), which
+    lets a recipe count its budget in epochs; the built-in benchmark tasks leave it unset.
+    """
+    xs, ys = train
+    xt, yt = test
+    return TaskInstance(
+        name=name,
+        model=model,
+        batches=epoch_batches(xs, ys, batch_size, seed),
+        loss_fn=loss_fn,
+        full_train_loss=whole_set_loss(loss_fn, xs, ys),
+        test_loss=whole_set_loss(loss_fn, xt, yt),
+        default_steps=steps,
+        metrics=dict(metrics or {}),
+        steps_per_epoch=xs.shape[0] // batch_size if epochs else None,
+    )

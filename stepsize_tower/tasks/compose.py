@@ -19,7 +19,7 @@ import torch
 import torch.nn.functional as F
 from torch import Tensor, nn
 
-from .base import Batch, LossFn, TaskInstance, epoch_batches, seeded_module, split_indices, whole_set_loss
+from .base import Batch, LossFn, TaskInstance, seeded_module, split_indices, supervised_instance
 
 __all__ = [
     "DATASETS",
@@ -261,14 +261,15 @@ def compose_task(
     metrics: dict[str, Callable[[nn.Module], float]] = {}
     if data.classes:
         metrics = {"train_accuracy": accuracy(xs, ys), "test_accuracy": accuracy(xt, yt)}
-    return TaskInstance(
-        name=f"{model}_{dataset}",
-        model=net,
-        batches=epoch_batches(xs, ys, batch_size, seed),
-        loss_fn=loss_fn,
-        full_train_loss=whole_set_loss(loss_fn, xs, ys),
-        test_loss=whole_set_loss(loss_fn, xt, yt),
-        default_steps=steps,
+    return supervised_instance(
+        f"{model}_{dataset}",
+        net,
+        loss_fn,
+        (xs, ys),
+        (xt, yt),
+        batch_size=batch_size,
+        seed=seed,
+        steps=steps,
         metrics=metrics,
-        steps_per_epoch=xs.shape[0] // batch_size,
+        epochs=True,
     )

@@ -8,7 +8,7 @@ import torch
 import torch.nn.functional as F
 from torch import Tensor, nn
 
-from .base import Batch, TaskInstance, epoch_batches, seeded_module, split_indices, whole_set_loss
+from .base import Batch, TaskInstance, seeded_module, split_indices, supervised_instance
 
 __all__ = ["build_cnn_digits", "build_mlp_digits"]
 
@@ -33,14 +33,8 @@ def _instance(name: str, seed: int, model: nn.Module, flatten: bool) -> TaskInst
     if flatten:
         x_all = x_all.flatten(1)
     train, test = split_indices(x_all.shape[0], 0.8, seed)
-    return TaskInstance(
-        name=name,
-        model=model,
-        batches=epoch_batches(x_all[train], y_all[train], 64, seed),
-        loss_fn=_cross_entropy,
-        full_train_loss=whole_set_loss(_cross_entropy, x_all[train], y_all[train]),
-        test_loss=whole_set_loss(_cross_entropy, x_all[test], y_all[test]),
-        default_steps=300,
+    return supervised_instance(
+        name, model, _cross_entropy, (x_all[train], y_all[train]), (x_all[test], y_all[test]), batch_size=64, seed=seed
     )
 
 

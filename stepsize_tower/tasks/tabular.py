@@ -8,7 +8,7 @@ import torch
 import torch.nn.functional as F
 from torch import Tensor, nn
 
-from .base import Batch, TaskInstance, epoch_batches, seeded_module, split_indices, whole_set_loss
+from .base import Batch, TaskInstance, seeded_module, split_indices, supervised_instance
 
 __all__ = ["build_least_squares_raw", "build_logistic_cancer"]
 
@@ -49,14 +49,14 @@ def build_logistic_cancer(seed: int) -> TaskInstance:
         return F.binary_cross_entropy_with_logits(model(x).squeeze(-1), y) + 0.5 * LOGISTIC_L2 * penalty
 
     model = seeded_module(seed, lambda: nn.Sequential(nn.Linear(x_all.shape[1], 1)))
-    return TaskInstance(
-        name="logreg_cancer",
-        model=model,
-        batches=epoch_batches(x_all[train], y_all[train], 32, seed),
-        loss_fn=loss_fn,
-        full_train_loss=whole_set_loss(loss_fn, x_all[train], y_all[train]),
-        test_loss=whole_set_loss(loss_fn, x_all[test], y_all[test]),
-        default_steps=300,
+    return supervised_instance(
+        "logreg_cancer",
+        model,
+        loss_fn,
+        (x_all[train], y_all[train]),
+        (x_all[test], y_all[test]),
+        batch_size=32,
+        seed=seed,
     )
 
 
@@ -96,12 +96,12 @@ def build_least_squares_raw(seed: int) -> TaskInstance:
         return F.mse_loss(model(x).squeeze(-1), y)
 
     model = seeded_module(seed, lambda: nn.Sequential(nn.Linear(RAW_FEATURES, 1)))
-    return TaskInstance(
-        name="lsq_raw",
-        model=model,
-        batches=epoch_batches(x_all[train], y_all[train], 64, seed),
-        loss_fn=loss_fn,
-        full_train_loss=whole_set_loss(loss_fn, x_all[train], y_all[train]),
-        test_loss=whole_set_loss(loss_fn, x_all[test], y_all[test]),
-        default_steps=300,
+    return supervised_instance(
+        "lsq_raw",
+        model,
+        loss_fn,
+        (x_all[train], y_all[train]),
+        (x_all[test], y_all[test]),
+        batch_size=64,
+        seed=seed,
     )
