@@ -1,8 +1,8 @@
 """Compiled fused passes for the Adam step with the trail: correctness, compile cost and step time.
 
 What it measures
-    * Correctness of the kernels in ``stepsize_tower/_compiled.py`` (compiled with
-      torch.compile / inductor when it works, else the same code eagerly):
+    * Correctness of the kernels in ``stepsize_tower/_compiled.py`` and of the lagged one
+      defined here (compiled with torch.compile / inductor when it works, else eagerly):
       - against a float64 reference written with plain torch ops (one step from the same
         float32 state): max abs and max relative differences of w, m, v, the trail E and the
         dot product h = <g, E>, for Adam, Adam with L2 decay and ``maximize``, and AdamW;
@@ -169,6 +169,106 @@ def elem_rel(got: list[Tensor], want: list[Tensor]) -> float:
     return out
 
 
+# --------------------------------------------------------------------------- the lagged kernel (measured here only)
+
+
+def _lagged_body(
+    params: list[Tensor],
+    grads: list[Tensor],
+    exp_avgs: list[Tensor],
+    exp_avg_sqs: list[Tensor],
+    emas: list[Tensor],
+    emas_out: list[Tensor],
+    steps: list[Tensor],
+    a: Tensor,
+    beta1: float,
+    beta2: float,
+    eps: float,
+    weight_decay: float,
+    decoupled: bool,
+    maximize: bool,
+    trail_weight: float,
+) -> tuple[Tensor, Tensor]:
+    coefs = C._adam_scalars(steps, a, beta1, beta2, weight_decay, decoupled)
+    # The dot product is written after the update on purpose: inductor (CPU) fuses a reduction
+    # into the loop of the pointwise nodes before it, not into the ones after it.
+    dots = []
+    for i, (p, g, m, v, e, e_out) in enumerate(zip(params, grads, exp_avgs, exp_avg_sqs, emas, emas_out, strict=True)):
+        gt, w_new, m_new, v_new, e_new = C.adam_trail_values(
+            p, g, m, v, e, coefs[i], beta1, beta2, eps, weight_decay, decoupled, maximize, trail_weight
+        )
+        dots.append(C._dot64(gt, e))
+        p.copy_(w_new)
+        m.copy_(m_new)
+        v.copy_(v_new)
+        e_out.copy_(e_new)
+    total = torch.zeros((), dtype=torch.float64, device=grads[0].device)
+    for d in dots:
+        total = total + d
+    return total, coefs
+
+
+def _lagged_inplace_body(
+    params: list[Tensor],
+    grads: list[Tensor],
+    exp_avgs: list[Tensor],
+    exp_avg_sqs: list[Tensor],
+    emas: list[Tensor],
+    steps: list[Tensor],
+    a: Tensor,
+    beta1: float,
+    beta2: float,
+    eps: float,
+    weight_decay: float,
+    decoupled: bool,
+    maximize: bool,
+    trail_weight: float,
+) -> tuple[Tensor, Tensor]:
+    total = C._dot_body(params, grads, emas, weight_decay, decoupled, maximize)
+    coefs = C._update_body(
+        params, grads, exp_avgs, exp_avg_sqs, emas, steps, a, beta1, beta2, eps, weight_decay, decoupled, maximize,
+        trail_weight,
+    )  # fmt: skip
+    return total, coefs
+
+
+def lagged_adam_trail(
+    params: list[Tensor],
+    grads: list[Tensor],
+    exp_avgs: list[Tensor],
+    exp_avg_sqs: list[Tensor],
+    emas: list[Tensor],
+    steps: list[Tensor],
+    a: Tensor,
+    beta1: float,
+    beta2: float,
+    eps: float,
+    weight_decay: float,
+    decoupled: bool,
+    maximize: bool,
+    trail_weight: float,
+    emas_out: list[Tensor] | None = None,
+) -> Tensor:
+    r"""The step of ``adam_trail_update`` and, from the same pass, ``Σ_i <g̃_i, E_i>`` (float64).
+
+    The dot product is against the trail *read* by this step, so a caller that learns the
+    step size from it uses it one step late. With ``emas_out`` (a second list of trail
+    buffers, swapped by the caller after each step) the whole step is ONE loop per tensor;
+    without it the trail is updated in place and inductor emits two loops (the dot product,
+    then the update). L2 decay also gives two loops: the dot product reads ``w`` first.
+    """
+    C._check(params, grads, exp_avgs, exp_avg_sqs, emas, steps)
+    hyper = (float(beta1), float(beta2), float(eps), float(weight_decay), bool(decoupled), bool(maximize))
+    common = (steps, C._as_step_size(a, params[0]), *hyper, float(trail_weight))
+    head = (params, grads, exp_avgs, exp_avg_sqs, emas)
+    if emas_out is None:
+        return C._run("lagged_inplace", _lagged_inplace_body, *head, *common)[0]  # type: ignore[no-any-return]
+    C._check(params, emas_out)
+    if any(o.data_ptr() == e.data_ptr() for o, e in zip(emas_out, emas, strict=True)):
+        raise ValueError("emas_out must not alias emas; pass emas_out=None to update the trail in place")
+    return C._run("lagged", _lagged_body, *head, emas_out, *common)[0]  # type: ignore[no-any-return]
+
+
 def run_kernel(kind: str, st: State, a: Tensor, wd: float, dec: bool, mx: bool) -> tuple[float, list[Tensor]]:
     """One step of ``kind`` on ``st`` (steps incremented first); returns (dot, new trail)."""
     torch._foreach_add_(st.steps, 1)
@@ -178,10 +278,10 @@ def run_kernel(kind: str, st: State, a: Tensor, wd: float, dec: bool, mx: bool) 
         C.adam_trail_update(st.w, st.g, st.m, st.v, st.e, st.steps, a, *args)
         return float(h), st.e
     if kind == "lagged 1-pass":
-        h = C.lagged_adam_trail(st.w, st.g, st.m, st.v, st.e, st.steps, a, *args, emas_out=st.e2)
+        h = lagged_adam_trail(st.w, st.g, st.m, st.v, st.e, st.steps, a, *args, emas_out=st.e2)
         return float(h), st.e2
     if kind == "lagged in-place":
-        h = C.lagged_adam_trail(st.w, st.g, st.m, st.v, st.e, st.steps, a, *args)
+        h = lagged_adam_trail(st.w, st.g, st.m, st.v, st.e, st.steps, a, *args)
         return float(h), st.e
     raise ValueError(kind)
 
@@ -406,7 +506,7 @@ def make_contenders(n_params: int, seed: int) -> tuple[dict[str, Callable[[], An
 
             def act(st: State = st) -> Any:
                 torch._foreach_add_(st.steps, 1)
-                h = C.lagged_adam_trail(st.w, st.g, st.m, st.v, st.e, st.steps, a, *args, emas_out=st.e2)
+                h = lagged_adam_trail(st.w, st.g, st.m, st.v, st.e, st.steps, a, *args, emas_out=st.e2)
                 st.e, st.e2 = st.e2, st.e
                 return h
 
@@ -414,7 +514,7 @@ def make_contenders(n_params: int, seed: int) -> tuple[dict[str, Callable[[], An
 
             def act(st: State = st) -> Any:
                 torch._foreach_add_(st.steps, 1)
-                return C.lagged_adam_trail(st.w, st.g, st.m, st.v, st.e, st.steps, a, *args)
+                return lagged_adam_trail(st.w, st.g, st.m, st.v, st.e, st.steps, a, *args)
 
         t0 = time.perf_counter()
         act()

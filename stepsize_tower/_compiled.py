@@ -1,9 +1,9 @@
 r"""Compiled (torch.compile / inductor) kernels for the Adam update with the trail of updates.
 
 :func:`two_pass_dot` and :func:`adam_trail_update` are the step of ``TowerAdam(compiled=True)``
-(:meth:`stepsize_tower.adam.AdamRule.trail_dot` / ``update_with_trail``).
-:func:`lagged_adam_trail` is measured by ``experiments/fused_pass.py`` only and not offered:
-it saved too little to be worth a hypergradient one step late (see the README). Every function
+(:meth:`stepsize_tower.adam.AdamRule.trail_dot` / ``update_with_trail``). A one-step-lagged
+variant (the dot product folded into the update loop) lives in ``experiments/fused_pass.py``,
+which measured it: it saved too little to be worth a hypergradient one step late (README). Every function
 runs the same code eagerly when :func:`available` is False (no inductor, no C++ compiler, or
 ``STEPSIZE_TOWER_COMPILE=0``); the optimizer then takes its default path instead.
 
@@ -31,12 +31,11 @@ Kernels:
 * :func:`two_pass_dot` then :func:`adam_trail_update` (the default, exact order): the dot
   product against the old trail first (it decides :math:`a`), then ONE fused loop that reads
   :math:`w, g, m, v, E` once and writes :math:`w, m, v, E` once.
-* :func:`lagged_adam_trail`: ONE loop that returns :math:`h` against the trail it reads and
-  applies the step with the given :math:`a` (learned from the previous step's :math:`h`).
-  Inductor only fuses the reduction with the update when the new trail goes to a second
-  buffer (``emas_out``, swapped by the caller each step: one more parameter-sized buffer);
-  writing the trail in place (``emas_out=None``) compiles to one kernel with two loops
-  (a read pass for the dot product, then the update).
+* the lagged variant (``experiments/fused_pass.py``): ONE loop that returns :math:`h` against
+  the trail it reads and applies the step with the given :math:`a` (learned from the previous
+  step's :math:`h`). Inductor only fuses the reduction with the update when the new trail
+  goes to a second buffer (one more parameter-sized buffer); writing the trail in place
+  compiles to one kernel with two loops (a read pass for the dot product, then the update).
 
 Measured (experiments/fused_pass.py, 1 thread, shared 2-core EPYC, 10.5M parameters in 20
 tensors, ratio of medians to ``torch.optim.Adam(fused=True)``): two-pass 1.74x, lagged with a
@@ -66,8 +65,8 @@ from torch import Tensor
 
 __all__ = [
     "adam_trail_update",
+    "adam_trail_values",
     "available",
-    "lagged_adam_trail",
     "reset",
     "two_pass_dot",
 ]
@@ -202,6 +201,27 @@ def _adam_new(
     return p - u, m_new, v_new, u
 
 
+def adam_trail_values(
+    p: Tensor,
+    g: Tensor,
+    m: Tensor,
+    v: Tensor,
+    e: Tensor,
+    coef: Tensor,
+    beta1: float,
+    beta2: float,
+    eps: float,
+    weight_decay: float,
+    decoupled: bool,
+    maximize: bool,
+    trail_weight: float,
+) -> tuple[Tensor, Tensor, Tensor, Tensor, Tensor]:
+    """``(g̃, w', m', v', E')`` of one tensor for one step (computed, not written; traced inside the kernels)."""
+    gt = _loss_grad(p, g, weight_decay, decoupled, maximize)
+    w_new, m_new, v_new, delta = _adam_new(p, gt, m, v, coef, beta1, beta2, eps, weight_decay, decoupled)
+    return gt, w_new, m_new, v_new, e * (1 - trail_weight) + trail_weight * delta
+
+
 def _dot64(x: Tensor, y: Tensor) -> Tensor:
     """``<x, y>`` with exact float32 products accumulated in float64."""
     return (x.to(torch.float64) * y.to(torch.float64)).sum()
@@ -237,74 +257,14 @@ def _update_body(
 ) -> Tensor:
     coefs = _adam_scalars(steps, a, beta1, beta2, weight_decay, decoupled)
     for i, (p, g, m, v, e) in enumerate(zip(params, grads, exp_avgs, exp_avg_sqs, emas, strict=True)):
-        gt = _loss_grad(p, g, weight_decay, decoupled, maximize)
-        w_new, m_new, v_new, delta = _adam_new(p, gt, m, v, coefs[i], beta1, beta2, eps, weight_decay, decoupled)
-        e_new = e * (1 - trail_weight) + trail_weight * delta
+        _, w_new, m_new, v_new, e_new = adam_trail_values(
+            p, g, m, v, e, coefs[i], beta1, beta2, eps, weight_decay, decoupled, maximize, trail_weight
+        )
         p.copy_(w_new)
         m.copy_(m_new)
         v.copy_(v_new)
         e.copy_(e_new)
     return coefs  # an output, so stored once (see _adam_scalars)
-
-
-def _lagged_body(
-    params: list[Tensor],
-    grads: list[Tensor],
-    exp_avgs: list[Tensor],
-    exp_avg_sqs: list[Tensor],
-    emas: list[Tensor],
-    emas_out: list[Tensor],
-    steps: list[Tensor],
-    a: Tensor,
-    beta1: float,
-    beta2: float,
-    eps: float,
-    weight_decay: float,
-    decoupled: bool,
-    maximize: bool,
-    trail_weight: float,
-) -> tuple[Tensor, Tensor]:
-    coefs = _adam_scalars(steps, a, beta1, beta2, weight_decay, decoupled)
-    # The dot product is written after the update on purpose: inductor (CPU) fuses a reduction
-    # into the loop of the pointwise nodes before it, not into the ones after it.
-    dots = []
-    for i, (p, g, m, v, e, e_out) in enumerate(zip(params, grads, exp_avgs, exp_avg_sqs, emas, emas_out, strict=True)):
-        gt = _loss_grad(p, g, weight_decay, decoupled, maximize)
-        w_new, m_new, v_new, delta = _adam_new(p, gt, m, v, coefs[i], beta1, beta2, eps, weight_decay, decoupled)
-        e_new = e * (1 - trail_weight) + trail_weight * delta
-        dots.append(_dot64(gt, e))
-        p.copy_(w_new)
-        m.copy_(m_new)
-        v.copy_(v_new)
-        e_out.copy_(e_new)
-    total = torch.zeros((), dtype=torch.float64, device=grads[0].device)
-    for d in dots:
-        total = total + d
-    return total, coefs
-
-
-def _lagged_inplace_body(
-    params: list[Tensor],
-    grads: list[Tensor],
-    exp_avgs: list[Tensor],
-    exp_avg_sqs: list[Tensor],
-    emas: list[Tensor],
-    steps: list[Tensor],
-    a: Tensor,
-    beta1: float,
-    beta2: float,
-    eps: float,
-    weight_decay: float,
-    decoupled: bool,
-    maximize: bool,
-    trail_weight: float,
-) -> tuple[Tensor, Tensor]:
-    total = _dot_body(params, grads, emas, weight_decay, decoupled, maximize)
-    coefs = _update_body(
-        params, grads, exp_avgs, exp_avg_sqs, emas, steps, a, beta1, beta2, eps, weight_decay, decoupled, maximize,
-        trail_weight,
-    )  # fmt: skip
-    return total, coefs
 
 
 # --------------------------------------------------------------------------- public API
@@ -372,49 +332,3 @@ def adam_trail_update(
         "update", _update_body, params, list(grads), list(exp_avgs), list(exp_avg_sqs), list(emas), list(steps),
         _as_step_size(a, params[0]), *hyper, float(trail_weight),
     )  # fmt: skip
-
-
-def lagged_adam_trail(
-    params: Sequence[Tensor],
-    grads: Sequence[Tensor],
-    exp_avgs: Sequence[Tensor],
-    exp_avg_sqs: Sequence[Tensor],
-    emas: Sequence[Tensor],
-    steps: Sequence[Tensor],
-    a: Tensor | float,
-    beta1: float,
-    beta2: float,
-    eps: float,
-    weight_decay: float,
-    decoupled: bool,
-    maximize: bool,
-    trail_weight: float,
-    emas_out: Sequence[Tensor] | None = None,
-) -> Tensor:
-    r"""The step of :func:`adam_trail_update` and, from the same pass, ``Σ_i <g̃_i, E_i>`` (float64).
-
-    The dot product is against the trail *read* by this step (the one before it is updated), so
-    a caller that learns the step size from it uses it one step late: step ``s`` applies
-    :math:`a_s` (learned from :math:`h_{s-1}`) and returns :math:`h_s` for :math:`a_{s+1}`.
-
-    With ``emas_out`` (a second list of trail buffers, not aliasing ``emas``) the new trail is
-    written there and the whole step is ONE loop per tensor; the caller swaps the two lists
-    after each step. Without it the trail is updated in place and inductor emits two loops
-    (the dot product, then the update): same result, the cost of the two-pass path. L2 decay
-    (``decoupled=False``, ``weight_decay != 0``) also gives two loops: the dot product reads
-    ``w`` before the step overwrites it.
-    """
-    params = list(params)
-    if not params:
-        return torch.zeros((), dtype=torch.float64)
-    _check(params, grads, exp_avgs, exp_avg_sqs, emas, steps)
-    hyper = (float(beta1), float(beta2), float(eps), float(weight_decay), bool(decoupled), bool(maximize))
-    common = (list(steps), _as_step_size(a, params[0]), *hyper, float(trail_weight))
-    head = (params, list(grads), list(exp_avgs), list(exp_avg_sqs), list(emas))
-    if emas_out is None:
-        return _run("lagged_inplace", _lagged_inplace_body, *head, *common)[0]  # type: ignore[no-any-return]
-    outs = list(emas_out)
-    _check(params, outs)
-    if any(o.data_ptr() == e.data_ptr() for o, e in zip(outs, emas, strict=True)):
-        raise ValueError("emas_out must not alias emas; pass emas_out=None to update the trail in place")
-    return _run("lagged", _lagged_body, *head, outs, *common)[0]  # type: ignore[no-any-return]
