@@ -97,6 +97,7 @@ class AdamRule:
         a_prev: Tensor,
         *,
         exact: bool = True,
+        slope: bool = True,
     ) -> tuple[Tensor, Tensor, list[Tensor]]:
         self._init(p, state)
         beta1, beta2 = _betas(group)
@@ -115,23 +116,24 @@ class AdamRule:
             if not first:
                 den = v.sqrt().div_(bc2s_prev.to(v.dtype)).add_(eps)
                 g_u_prev += _chunks.dot(g, m.div(den))
-            m_new, v_new = m.clone(), v.clone()
-            _update_moments(m_new, v_new, g, beta1, beta2)
-            den = v_new.sqrt_().div_(bc2s_new.to(v.dtype)).add_(eps)
-            g_u_new += _chunks.dot(g, m_new.div_(den))
+            if slope:  # the start-up test's <g_s, d_{0,s}>: the direction this step would take
+                m_new, v_new = m.clone(), v.clone()
+                _update_moments(m_new, v_new, g, beta1, beta2)
+                den = v_new.sqrt_().div_(bc2s_new.to(v.dtype)).add_(eps)
+                g_u_new += _chunks.dot(g, m_new.div_(den))
             if self.decoupled and wd != 0:
                 g_w += _chunks.dot(g, w)
         dot_prev = torch.where(step > 0, g_u_prev / bc1_prev, 0.0)
-        slope = g_u_new / bc1_new
+        new_slope = g_u_new / bc1_new
         if self.decoupled and wd != 0:
             dot_prev = torch.where(step > 0, (dot_prev + wd * g_w) / (1 - a_prev * wd), 0.0)
-            slope = slope + wd * g_w
+            new_slope = new_slope + wd * g_w
         tangent_dots = []
         if group.get("learn_betas"):
             for key in ("beta1_tangent", "beta2_tangent"):
                 t = state.get(key)
                 tangent_dots.append(_chunks.dot(g_all, _chunks.flat(t)) if t is not None else g_u_prev * 0)
-        return dot_prev, slope, tangent_dots
+        return dot_prev, new_slope, tangent_dots
 
     def update(
         self,

@@ -300,10 +300,18 @@ def _tower_step_host(ts: dict[str, Tensor], levels: Sequence[Level], update_dot:
             prev_dir[unit] = direction
             hyper_all.append(hyper)
         for key, rows in (("log_step", u), ("exp_avg", exp_avg), ("exp_avg_sq", exp_avg_sq), ("prev_dir", prev_dir)):
-            ts[key].copy_(torch.tensor(rows, dtype=_STATE_DTYPE))
-        ts["hypergrad"].copy_(torch.tensor(hyper_all, dtype=_STATE_DTYPE))
+            _store(ts[key], rows)
+        _store(ts["hypergrad"], hyper_all)
     steps = [[math.exp(x) for x in row] for row in u]
     for row in steps:
         row[0] *= lr_value
-    ts["prev_step"].copy_(torch.tensor(steps, dtype=_STATE_DTYPE))
+    _store(ts["prev_step"], steps)
     return ts["prev_step"][:, 0].clone()
+
+
+def _store(t: Tensor, rows: list[list[float]]) -> None:
+    """Write Python floats ``rows`` [U][D] into state tensor ``t`` (one step size and level: a fill)."""
+    if t.numel() == 1:
+        t.fill_(rows[0][0])
+    else:
+        t.copy_(torch.tensor(rows, dtype=_STATE_DTYPE))

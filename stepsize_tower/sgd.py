@@ -61,15 +61,16 @@ class SGDRule:
         a_prev: Tensor,
         *,
         exact: bool = True,
+        slope: bool = True,
     ) -> tuple[Tensor, Tensor, list[Tensor]]:
         mu, damp = self._mu(group), group["dampening"]
         g = _chunks.flat(_grad(group, p, grad))
-        gg = _chunks.dot(g, g)
+        zero = torch.zeros((), dtype=torch.float64, device=p.device)
+        gg = _chunks.dot(g, g) if slope else zero  # only the slope <g_s, d_{0,s}> needs it
         buf = state.get("momentum_buffer")
         prev = state.get("prev_grad")
         g_buf = _chunks.dot(g, _chunks.flat(buf)) if buf is not None else None
         g_prev = _chunks.dot(g, _chunks.flat(prev)) if prev is not None else None
-        zero = torch.zeros((), dtype=torch.float64, device=p.device)
         tangent = state.get("momentum_tangent")
         tangent_dots = (
             [_chunks.dot(g, _chunks.flat(tangent)) if tangent is not None else zero]
@@ -79,11 +80,11 @@ class SGDRule:
 
         if group["momentum"] == 0:
             return (g_prev if g_prev is not None else zero), gg, tangent_dots
-        buf_new = gg if g_buf is None else mu * g_buf + (1 - damp) * gg  # <g, buf_s>
+        buf_new = gg if (g_buf is None or not slope) else mu * g_buf + (1 - damp) * gg  # <g, buf_s>
         if not group["nesterov"]:
-            return (g_buf if g_buf is not None else zero), buf_new, tangent_dots
+            return (g_buf if g_buf is not None else zero), (buf_new if slope else zero), tangent_dots
         dot_prev = zero if (g_prev is None or g_buf is None) else g_prev + mu * g_buf
-        return dot_prev, gg + mu * buf_new, tangent_dots
+        return dot_prev, (gg + mu * buf_new if slope else zero), tangent_dots
 
     def update(
         self,

@@ -120,11 +120,20 @@ class BaseRule(Protocol):
         ...
 
     def probe(
-        self, group: dict[str, Any], p: Tensor, grad: Tensor, state: dict[str, Any], a_prev: Tensor, *, exact: bool
+        self,
+        group: dict[str, Any],
+        p: Tensor,
+        grad: Tensor,
+        state: dict[str, Any],
+        a_prev: Tensor,
+        *,
+        exact: bool,
+        slope: bool = True,
     ) -> tuple[Tensor, Tensor, list[Tensor]]:
         """Return ``(<g_s, d_{0,s-1}>, <g_s, d_{0,s}>, [<g_s, T_j> ...])`` for one tensor; change nothing.
 
-        With ``exact=False`` the first two are not needed and may be returned as zeros.
+        With ``exact=False`` the first two are not needed and may be returned as zeros; with
+        ``slope=False`` the second (used only by the start-up test) may be.
 
         ``g_s`` is the gradient of the minimized loss (sign flipped under ``maximize``,
         L2 weight decay included when the base treats it as part of the loss). The first
@@ -421,11 +430,12 @@ class TowerOptimizer(Optimizer):
         unit_index = torch.tensor(unit_of, device=ts["step"].device) if per_tensor else None
 
         def per_unit(values: Iterable[Tensor]) -> Tensor:
+            """Sum per-tensor values (float32 or float64; summed in float64) into the units."""
             listed = list(values)
             if not listed:
                 return torch.zeros(units, dtype=torch.float64, device=ts["step"].device)
             if unit_index is None:  # one unit: the group
-                return torch.stack(listed).sum().double().reshape(1)
+                return torch.stack(listed).double().sum().reshape(1)
             out = torch.zeros(units, dtype=torch.float64, device=unit_index.device)
             return out.index_add_(0, unit_index, torch.stack(listed).double())
 
@@ -441,7 +451,7 @@ class TowerOptimizer(Optimizer):
         tangent_dots = None
         if exact or learns_hyper:
             probes = [
-                self._rule.probe(group, p, g, st, a_prev[u], exact=exact)
+                self._rule.probe(group, p, g, st, a_prev[u], exact=exact, slope=may_retreat)
                 for p, g, st, u in zip(params, grads, states, unit_of, strict=True)
             ]
             dot_u, slope_u = per_unit(pr[0] for pr in probes), per_unit(pr[1] for pr in probes)
@@ -459,8 +469,9 @@ class TowerOptimizer(Optimizer):
             if fast is not None:  # the base's compiled read pass (one step size for the group)
                 trail_u = fast.reshape(1).to(zero.device)
             else:
+                # Each product in the tensors' precision, summed in float64 by per_unit (one cast).
                 trail_dots = [
-                    _chunks.dot(_chunks.flat(self._rule.loss_grad(group, p, g)), _chunks.flat(st["update_ema"]))
+                    torch.dot(_chunks.flat(self._rule.loss_grad(group, p, g)), _chunks.flat(st["update_ema"]))
                     if "update_ema" in st
                     else zero
                     for p, g, st in zip(params, grads, states, strict=True)
@@ -488,28 +499,36 @@ class TowerOptimizer(Optimizer):
             gmax = gmax_all
         hyper_dot = trail_u / (1.0 - horizon) if trail_u is not None else dot_u * a_prev
         checks = [hyper_dot, slope_u, dot_u] + [c for c in (gmax, tangent_dots) if c is not None]
-        finite = local_finite & torch.stack([torch.isfinite(c).all() for c in checks]).all()
-        # Start-up test: the loss rose along the last step (secant ratio rho).
-        prev_slope = ts["prev_slope"].sum()
-        rho = dot_u.sum() / prev_slope
-        threshold = torch.where(ts["retreated"].bool(), -RETREAT_AGAIN_RATIO, -1.0)
-        secant = (prev_slope > 0) & (rho < threshold)
-        if not may_retreat:
-            secant = torch.zeros_like(secant)
-        # Any time (SGD): the largest gradient entry exceeds RETREAT_GROWTH x the largest seen so far.
-        if gmax is not None:
+        finite = local_finite & torch.isfinite(torch.cat([c.reshape(-1) for c in checks])).all()
+        # The retreat tests, only where one can fire (each costs a few tiny tensor operations).
+        retreat: Tensor | None = None
+        secant: Tensor | None = None
+        rho: Tensor | None = None
+        growth: Tensor | None = None
+        if may_retreat:  # start-up test: the loss rose along the last step (secant ratio rho)
+            prev_slope = ts["prev_slope"].sum()
+            rho = dot_u.sum() / prev_slope
+            threshold = torch.where(ts["retreated"].bool(), -RETREAT_AGAIN_RATIO, -1.0)
+            retreat = secant = (prev_slope > 0) & (rho < threshold)
+        if gmax is not None:  # any time (SGD): the largest gradient entry grew RETREAT_GROWTH x
             growth = gmax / ts["peak_gmax"]
             blowup = (ts["peak_gmax"] > 0) & (growth > RETREAT_GROWTH)
+            retreat = blowup if retreat is None else retreat | blowup
+        if retreat is None:  # one host read per step either way
+            skip_now, retreat_now = not bool(finite), False
         else:
-            growth, blowup = torch.ones_like(rho), torch.zeros_like(secant)
-        retreat = secant | blowup
-        skip_now, retreat_now = torch.stack([~finite, retreat]).tolist()
+            skip_now, retreat_now = torch.stack([~finite, retreat]).tolist()
 
         if skip_now:
             ts["skipped"] += 1
             return
         if retreat_now:
-            factor = torch.where(secant, 1.0 / (1.0 - rho), 1.0 / (1.0 + growth))
+            to_secant = 1.0 / (1.0 - rho) if rho is not None else None  # the minimizer along the step
+            to_growth = 1.0 / (1.0 + growth) if growth is not None else None
+            if secant is not None and to_secant is not None and to_growth is not None:
+                factor = torch.where(secant, to_secant, to_growth)
+            else:
+                factor = next(f for f in (to_secant, to_growth) if f is not None)
             self._retreat(group, ts, params, states, unit_of, a_prev, factor)
             return
         ts["retreated"].fill_(0)

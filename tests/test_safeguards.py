@@ -107,3 +107,34 @@ def test_step_size_started_1e6_times_too_small_grows_1e4_times_within_300_steps(
     opt = factory([w], start)
     _train(opt, lambda: loss(w), 300)
     assert opt.step_sizes()[0][0] >= 1e4 * start
+
+
+@pytest.mark.parametrize("momentum", [0.0, 0.9], ids=["sgd", "momentum"])
+def test_gradient_spike_after_the_start_up_window_takes_the_last_step_back(momentum):
+    """Past the start-up window only the growth guard can retreat (the module's documented rule):
+    a gradient RETREAT_GROWTH+ times the largest seen moves the weights back along the last
+    direction, ``w <- w + (a_prev - a_new) d``, with ``a_new = a_prev / (1 + r)``, and the
+    spiking gradient is discarded."""
+    from stepsize_tower.tower import RETREAT_GROWTH, RETREAT_WINDOW
+
+    w = torch.zeros(4, dtype=torch.float64, requires_grad=True)
+    opt = TowerSGD([w], lr=0.01, momentum=momentum)
+    steady = torch.tensor([1.0, -0.5, 0.25, 2.0], dtype=torch.float64)
+    for _ in range(RETREAT_WINDOW + 5):
+        w.grad = steady.clone()
+        opt.step()
+    assert opt.retreats() == 0
+    a_prev = opt.step_sizes()[0][0]
+    last_direction = opt.state[w]["momentum_buffer"].clone() if momentum else steady
+    before = w.detach().clone()
+
+    spike = 4 * RETREAT_GROWTH  # r = |g|_max / the largest entry seen (2.0)
+    w.grad = steady * spike
+    opt.step()
+
+    assert opt.retreats() == 1 and opt.skipped_steps() == 0
+    a_new = a_prev / (1 + spike)
+    assert opt.step_sizes()[0][0] == pytest.approx(a_new, rel=1e-12)
+    torch.testing.assert_close(w.detach(), before + (a_prev - a_new) * last_direction, rtol=1e-12, atol=1e-15)
+    if momentum:  # the spike never entered the momentum buffer
+        torch.testing.assert_close(opt.state[w]["momentum_buffer"], last_direction, rtol=0, atol=0)
