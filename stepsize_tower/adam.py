@@ -11,7 +11,7 @@ from torch import Tensor
 from . import _chunks, _compiled, _fused
 from ._docs import TOWER_ARGS
 from ._state import keep
-from .defaults import DEFAULT_HORIZON, DEFAULT_HYPER_LEVEL
+from .defaults import DEFAULT_FIRST_STEP_LIMIT, DEFAULT_HORIZON, DEFAULT_HYPER_LEVEL
 from .levels import Level, resolve_levels
 from .tower import TowerOptimizer
 
@@ -340,6 +340,12 @@ class TowerAdam(TowerOptimizer):
             float32 rounding. The first step compiles (seconds); needs float32 parameters,
             ``granularity="group"``, ``horizon > 0`` and a working inductor backend (a C++
             compiler on CPU), and silently uses the default path otherwise (default: False).
+        first_step_limit: with levels, the first step size is cut to
+            ``min(a_0, first_step_limit * s)``, ``s`` the geometric mean over the group's
+            nonzero tensors of their root-mean-square entry: an Adam step moves every
+            weight by about ``a_0``, and a first step larger than the weights themselves
+            wrecks the model where the start-up test cannot see it. ``None`` turns it off
+            (default: 0.5, measured; see :mod:`stepsize_tower._first_step`).
 {TOWER_ARGS}
     """
 
@@ -365,6 +371,7 @@ class TowerAdam(TowerOptimizer):
         hyper_level: Level | None = None,
         sharded: bool = False,
         compiled: bool = False,
+        first_step_limit: float | None = DEFAULT_FIRST_STEP_LIMIT,
     ) -> None:
         if weight_decay is None:
             weight_decay = self._default_weight_decay
@@ -393,6 +400,7 @@ class TowerAdam(TowerOptimizer):
             "hyper_level": hyper_level or DEFAULT_HYPER_LEVEL,
             "sharded": sharded,
             "compiled": compiled,
+            "first_step_limit": first_step_limit,
         }
         super().__init__(params, defaults)
 

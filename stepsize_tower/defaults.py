@@ -8,7 +8,14 @@ from __future__ import annotations
 
 from .levels import Level
 
-__all__ = ["DEFAULT_DEPTH", "DEFAULT_HORIZON", "DEFAULT_HYPER_LEVEL", "default_horizon", "default_levels"]
+__all__ = [
+    "DEFAULT_DEPTH",
+    "DEFAULT_FIRST_STEP_LIMIT",
+    "DEFAULT_HORIZON",
+    "DEFAULT_HYPER_LEVEL",
+    "default_horizon",
+    "default_levels",
+]
 
 #: Levels above the base when neither ``depth`` nor ``levels`` is given.
 DEFAULT_DEPTH = 1
@@ -30,6 +37,16 @@ def default_horizon(momentum: float = 0.0) -> float:
     """
     return 0.0 if momentum > 0 else DEFAULT_HORIZON
 
+
+#: Adam-like bases: the first step moves weights by at most this many times their typical
+#: size (geometric mean over tensors of their root-mean-square entry; see
+#: :mod:`stepsize_tower._first_step`). Measured on the sensitivity benchmark (Adam, 5 tasks,
+#: seed 0): without it 32/45 good points, with limit 1, 0.5 or 0.25 35/45 (logistic regression
+#: and the GRU language model typed at lr 1 and 10 rescued, nothing lost); limit 2 and the
+#: group's plain root-mean-square (dominated by the GRU's embedding table) did not rescue the
+#: GRU. 0.5 rather than 1: on a small tanh network started at lr 10 or 100 a limit of 1 ended
+#: 10x worse than 0.5 or none (tests/test_safeguards.py). Three seeds: see the README.
+DEFAULT_FIRST_STEP_LIMIT = 0.5
 
 #: The level that learns momentum or betas when asked to (logit space, fixed step size).
 DEFAULT_HYPER_LEVEL = Level(kind="adam", lr=0.01)

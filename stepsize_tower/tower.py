@@ -58,6 +58,7 @@ from torch import distributed as dist
 from torch.optim import Optimizer
 
 from . import _chunks
+from ._first_step import check_first_step_limit, typical_scale
 from .hyper import hyper_step, init_hyper_state
 from .levels import Level, current_step_sizes, init_tower_state, tower_step
 
@@ -239,6 +240,7 @@ class TowerOptimizer(Optimizer):
     def __init__(self, params: Any, defaults: dict[str, Any]) -> None:
         _check_lr(defaults["lr"])
         _check_horizon(defaults.get("horizon", 0.0))
+        check_first_step_limit(defaults.get("first_step_limit"))
         if defaults.get("granularity") not in GRANULARITIES:
             raise ValueError(f"Invalid granularity: {defaults.get('granularity')!r}; expected one of {GRANULARITIES}")
         defaults = dict(defaults)
@@ -285,6 +287,8 @@ class TowerOptimizer(Optimizer):
             _check_lr(param_group["lr"])
         if "horizon" in param_group:
             _check_horizon(param_group["horizon"])
+        if "first_step_limit" in param_group:
+            check_first_step_limit(param_group["first_step_limit"])
         _check_sharded(
             param_group.get("sharded", self.defaults.get("sharded", False)),
             param_group.get("granularity", self.defaults.get("granularity")),
@@ -536,12 +540,42 @@ class TowerOptimizer(Optimizer):
             hyper_step(ts, tangent_dots, a_prev.mean(), Level(**group["hyper_level"]))
             ts["prev_lr"] = lr0
         a0 = tower_step(ts, levels, hyper_dot, group["lr"]) if levels else lr0.expand(units)
+        limit = group.get("first_step_limit")  # absent in groups saved before the option existed
+        if limit is not None and steps_taken == 0 and levels and self._rule.normalized:
+            a0 = self._limit_first_step(group, ts, params, unit_of, a0, float(limit), sharded)
         _publish_effective_lr(group, a0)
         ts["prev_slope"].copy_(slope_u)
         if gmax is not None:
             torch.maximum(ts["peak_gmax"], gmax, out=ts["peak_gmax"])
         ts["step"] += 1
         self._advance(group, params, grads, states, unit_of, a0, horizon if levels else 0.0)
+
+    def _limit_first_step(
+        self,
+        group: dict[str, Any],
+        ts: dict[str, Tensor],
+        params: list[Tensor],
+        unit_of: list[int],
+        a0: Tensor,
+        limit: float,
+        sharded: bool,
+    ) -> Tensor:
+        """``a_0 <- min(a_0, limit * typical weight size)`` before the first step (see :mod:`._first_step`)."""
+        scale = typical_scale(
+            params,
+            unit_of,
+            a0.shape[0],
+            a0.device,
+            reduce_group=_shard_group(group["params"]) if sharded else None,
+            sharded=sharded,
+            per_tensor_shards=any(_is_dtensor(p) for p in group["params"]),
+        )
+        cap = limit * scale
+        over = (scale > 0) & (a0 > cap)
+        ratio = torch.where(over, cap / torch.where(over, a0, 1.0), 1.0)
+        ts["log_step"][:, 0] += ratio.log()
+        ts["prev_step"][:, 0] *= ratio
+        return a0 * ratio
 
     def _retreat(
         self,

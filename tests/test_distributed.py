@@ -77,6 +77,9 @@ _OPTIMIZERS: dict[str, tuple[type, dict[str, Any]]] = {
     # An SGD-like level: its step is proportional to the hypergradient, so a dot product
     # counted twice (once per replica) would show in the step size.
     "adam_sgd_level": (TowerAdam, {"lr": 1e-2, "levels": [Level("sgd", lr=10.0)]}),
+    # Typed far above the weights' size: the first-step limit fires, from each rank's tensors
+    # (ZeRO: whole tensors on one rank each; FSDP2: a shard of every tensor on each rank).
+    "adam_limited": (TowerAdam, {"lr": 3.0}),
 }
 
 
@@ -313,7 +316,7 @@ def test_ddp_matches_single_process(tmp_path: Path, kind: str) -> None:
         _assert_close(w, ref)
 
 
-@pytest.mark.parametrize("kind", ["adam", "sgd", "adam_betas"])
+@pytest.mark.parametrize("kind", ["adam", "sgd", "adam_betas", "adam_limited"])
 def test_zero_sharded_matches_single_process(tmp_path: Path, kind: str) -> None:
     r0, r1 = _spawn(tmp_path, "_zero_worker", kind, True)
     assert 0 in r0["held"] + r1["held"]  # one rank holds none of the second group: it still takes part
@@ -341,7 +344,7 @@ def test_zero_consolidated_checkpoint_resumes(tmp_path: Path) -> None:
     assert r0["resumed"] == r1["resumed"]
 
 
-@pytest.mark.parametrize("kind", ["adam", "sgd"])
+@pytest.mark.parametrize("kind", ["adam", "sgd", "adam_limited"])
 def test_fsdp2_sharded_matches_single_process(tmp_path: Path, kind: str) -> None:
     pytest.importorskip("torch.distributed.fsdp")
     r0, r1 = _spawn(tmp_path, "_fsdp_worker", kind)
