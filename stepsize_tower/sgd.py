@@ -80,11 +80,14 @@ class SGDRule:
 
         if group["momentum"] == 0:
             return (g_prev if g_prev is not None else zero), gg, tangent_dots
-        buf_new = gg if (g_buf is None or not slope) else mu * g_buf + (1 - damp) * gg  # <g, buf_s>
         if not group["nesterov"]:
-            return (g_buf if g_buf is not None else zero), (buf_new if slope else zero), tangent_dots
-        dot_prev = zero if (g_prev is None or g_buf is None) else g_prev + mu * g_buf
-        return dot_prev, (gg + mu * buf_new if slope else zero), tangent_dots
+            dot_prev = g_buf if g_buf is not None else zero
+        else:
+            dot_prev = zero if (g_prev is None or g_buf is None) else g_prev + mu * g_buf
+        if not slope:
+            return dot_prev, zero, tangent_dots
+        buf_new = gg if g_buf is None else mu * g_buf + (1 - damp) * gg  # <g, buf_s>
+        return dot_prev, (gg + mu * buf_new if group["nesterov"] else buf_new), tangent_dots
 
     def update(
         self,

@@ -527,12 +527,13 @@ class TowerOptimizer(Optimizer):
             ts["skipped"] += 1
             return
         if retreat_now:
-            to_secant = 1.0 / (1.0 - rho) if rho is not None else None  # the minimizer along the step
-            to_growth = 1.0 / (1.0 + growth) if growth is not None else None
-            if secant is not None and to_secant is not None and to_growth is not None:
-                factor = torch.where(secant, to_secant, to_growth)
-            else:
-                factor = next(f for f in (to_secant, to_growth) if f is not None)
+            # The secant minimizer along the step, or the growth guard's cut (a test that fired ran).
+            if secant is not None and rho is not None and growth is not None:
+                factor = torch.where(secant, 1.0 / (1.0 - rho), 1.0 / (1.0 + growth))
+            elif rho is not None:  # only the start-up test ran
+                factor = 1.0 / (1.0 - rho)
+            elif growth is not None:  # only the growth guard ran
+                factor = 1.0 / (1.0 + growth)
             self._retreat(group, ts, params, states, unit_of, a_prev, factor)
             return
         ts["retreated"].fill_(0)
