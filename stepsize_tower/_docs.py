@@ -13,6 +13,14 @@ TOWER_ARGS = """        depth: number of levels above the base; 0 is a plain fix
         horizon: decay γ of the trail of recent updates that the step size's hypergradient
             is taken against; 0 is the one-step-back hypergradient (default: measured,
             :func:`stepsize_tower.defaults.default_horizon`: 0.99, or 0 for SGD with momentum).
+        growth_search: opt-in start-up search for a step size typed far too small, for
+            full-batch or large-batch runs: while every step so far kept at least half the
+            loss's slope along it, level 1's growth of ``log a_0`` is sped up by
+            ``stepsize_tower.levels.SEARCH_SPEEDUP ** n`` at the search's step ``n``, by at
+            most this much per step (0.5 is a factor 1.65); the first step that fails the
+            test, or a retreat, ends it for good. Under minibatch noise the test fails within
+            a few steps, so it rarely helps there (measured; see the README) (default:
+            None, off).
         maximize: maximize the objective instead of minimizing it (default: False).
         sharded: the group's parameters are split over the ranks of the default process
             group (``torch.distributed.optim.ZeroRedundancyOptimizer``, FSDP2

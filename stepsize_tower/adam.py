@@ -372,6 +372,7 @@ class TowerAdam(TowerOptimizer):
         sharded: bool = False,
         compiled: bool = False,
         first_step_limit: float | None = DEFAULT_FIRST_STEP_LIMIT,
+        growth_search: float | None = None,
     ) -> None:
         if weight_decay is None:
             weight_decay = self._default_weight_decay
@@ -401,6 +402,7 @@ class TowerAdam(TowerOptimizer):
             "sharded": sharded,
             "compiled": compiled,
             "first_step_limit": first_step_limit,
+            "growth_search": growth_search,
         }
         super().__init__(params, defaults)
 

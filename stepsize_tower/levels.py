@@ -23,6 +23,23 @@ decaying trail of updates ``D_{s-1} = Σ_j γ^(s-1-j) Δ_j`` (horizon γ > 0)::
 Top-down means level ``k`` uses the step size ``a_{k,s}`` that level ``k+1``
 produced in the same step. All state is float64 so that tiny hypergradients
 (step sizes of 1e-7 and below) neither underflow nor vanish under ``eps``.
+
+Growth search (``search_max_move = c_max``): a step size far too small grows by about
+``a_1`` per step in log space, so from 1e-7 it needs a few hundred steps to become useful.
+While every step so far has passed the engine's test (``search_dot > 0``: the loss still
+falls along the last step at least half as fast as when the step began; it is a one-step
+test, which does not lag like the trail), level 1's move on ``u_0`` becomes an exponential
+search::
+
+    u_{0,s} = u_{0,s-1} - c_s,   c_s = min(c, max(ρ^n c, -c_max))   when c < 0 (growth)
+
+with ``c = a_1 d_1`` the level's own move, ``ρ = SEARCH_SPEEDUP`` and ``n`` the steps
+searched so far. The first step that fails the test (or a retreat) ends the search for
+good, and level 1's first moment restarts from that step's hypergradient (it holds the
+search's growth, which would otherwise carry ``a_0`` on past the point the test found).
+From then on the levels alone move ``u_0``. The search is a start-up bracket, like the
+retreats not part of the differentiated update: the hypergradients of levels above 1 use
+``a_1`` unboosted.
 """
 
 from __future__ import annotations
@@ -41,7 +58,9 @@ __all__ = [
     "LEVEL_KINDS",
     "LOG_STEP_BOUND",
     "MAX_LOG_CHANGE",
+    "SEARCH_SPEEDUP",
     "Level",
+    "check_growth_search",
     "current_step_sizes",
     "init_tower_state",
     "resolve_levels",
@@ -56,6 +75,12 @@ HYPERGRAD_BOUND = 1e100
 
 #: No level changes its log step size by more than this in one step (a factor of e).
 MAX_LOG_CHANGE = 1.0
+
+#: The growth search's boost on level 1's move grows by this factor per searched step.
+SEARCH_SPEEDUP = 1.1
+
+#: Bound on ``n log ρ`` of the growth search's boost ``ρ^n`` (keeps it finite in float64).
+_SEARCH_MAX_LOG_BOOST = 200.0
 
 #: Log step sizes are clamped to ``[-LOG_STEP_BOUND, LOG_STEP_BOUND]`` (about 1e-30 ... 1e30
 #: relative for level 0), which keeps every step size finite by construction.
@@ -97,6 +122,21 @@ class Level:
             raise ValueError(f"Invalid level betas: {self.betas!r}; expected two numbers in [0, 1)")
         if not (math.isfinite(self.eps) and self.eps >= 0):
             raise ValueError(f"Invalid level eps: {self.eps!r}; expected a finite number >= 0")
+
+
+def check_growth_search(max_move: Any) -> None:
+    """Raise ``ValueError`` unless ``max_move`` is None or a number in (0, MAX_LOG_CHANGE]."""
+    if max_move is None:
+        return
+    if (
+        isinstance(max_move, bool)
+        or not isinstance(max_move, (int, float))
+        or not (math.isfinite(max_move) and 0 < max_move <= MAX_LOG_CHANGE)
+    ):
+        raise ValueError(
+            f"Invalid growth_search: {max_move!r}; expected a number in (0, {MAX_LOG_CHANGE:g}] (the start-up "
+            "search grows log(lr) by at most that much per step) or None to turn the search off"
+        )
 
 
 def resolve_levels(depth: int | None, levels: Sequence[Level | str | dict[str, Any]] | None) -> tuple[Level, ...]:
@@ -148,6 +188,7 @@ def init_tower_state(levels: Sequence[Level], units: int, device: torch.device) 
       ``hypergrad`` [U, D]: the last ``ĥ_1 .. ĥ_D`` (for inspection and tests).
       ``prev_slope`` [U]: ``<g_{s-1}, d_{0,s-1}>``, the last step's directional slope.
       ``peak_gmax`` []: the largest absolute gradient entry of all taken steps (SGD's guard).
+      ``search`` [U]: steps of the growth search so far, or -1 once it has ended.
       ``step``, ``skipped``, ``retreats`` []: counters; ``retreated`` []: 1 if the last call retreated.
     """
     d = len(levels)
@@ -164,6 +205,7 @@ def init_tower_state(levels: Sequence[Level], units: int, device: torch.device) 
         "hypergrad": torch.zeros(units, d, **kw),
         "prev_slope": torch.zeros(units, **kw),
         "peak_gmax": torch.zeros((), **kw),
+        "search": torch.zeros(units, **kw),
         "step": torch.zeros((), **kw),
         "skipped": torch.zeros((), **kw),
         "retreats": torch.zeros((), **kw),
@@ -199,13 +241,17 @@ def tower_step(
     levels: Sequence[Level],
     update_dot: Tensor,
     lr: float | Tensor,
+    search_dot: Tensor | None = None,
+    search_max_move: float | None = None,
 ) -> Tensor:
     """Update every level in place from ``<g_s, Δ>`` and return the new ``a_0`` [U].
 
     ``update_dot`` has shape [U]: the new gradient against the last update (or the trail).
     On the first step (``ts["step"] == 0``) there is no previous direction: the levels stay
     as they are and ``a_0 = lr * exp(u_0)``. Call it only for steps that are taken (finite
-    gradients, no retreat).
+    gradients, no retreat). With ``search_max_move`` and ``search_dot`` (``<g_s, d_{0,s-1}>``
+    [U]), units still in the growth search (module docstring) grow faster; a state without
+    ``"search"`` (saved before the search existed) has none.
     """
     d = len(levels)
     u = ts["log_step"]
@@ -214,13 +260,27 @@ def tower_step(
     # A few scalars on the CPU: Python floats beat ~40 tiny tensor ops (measured: 30 vs 135 us
     # for one step size; the loop loses from about 15 step sizes on, e.g. granularity="tensor").
     # Compiled steps keep tensors: no graph breaks, no guards on float values.
+    if search_max_move is None or search_dot is None or "search" not in ts:
+        search_max_move = search_dot = None
     if u.device.type == "cpu" and u.numel() <= HOST_MATH_MAX and not torch.compiler.is_compiling():
-        return _tower_step_host(ts, levels, update_dot, lr)
-    return _tower_step_tensors(ts, levels, update_dot, lr)
+        return _tower_step_host(ts, levels, update_dot, lr, search_dot, search_max_move)
+    return _tower_step_tensors(ts, levels, update_dot, lr, search_dot, search_max_move)
+
+
+def _search_move(change: float, boost: float, max_move: float) -> float:
+    """Level 1's move ``change`` on ``u_0`` under the growth search's ``boost`` (growth only)."""
+    if change >= 0 or boost <= 1.0:
+        return change
+    return min(change, max(change * boost, -max_move))
 
 
 def _tower_step_tensors(
-    ts: dict[str, Tensor], levels: Sequence[Level], update_dot: Tensor, lr: float | Tensor
+    ts: dict[str, Tensor],
+    levels: Sequence[Level],
+    update_dot: Tensor,
+    lr: float | Tensor,
+    search_dot: Tensor | None = None,
+    search_max_move: float | None = None,
 ) -> Tensor:
     """:func:`tower_step` as tensor operations: no host read (accelerators, compiled steps)."""
     d = len(levels)
@@ -233,10 +293,25 @@ def _tower_step_tensors(
     chain = torch.cat([torch.ones_like(h1)[:, None], -prev_dir[:, :-1] * prev_step[:, 1:]], dim=1)
     hyper = (h1[:, None] * torch.cumprod(chain, dim=1)).clamp(-HYPERGRAD_BOUND, HYPERGRAD_BOUND)
 
+    # The growth search: which units go on searching, and their boost on level 1's move.
+    boost = new_search = None
+    max_move = MAX_LOG_CHANGE if search_max_move is None else search_max_move
+    exp_avg = ts["exp_avg"]
+    if search_dot is not None and search_max_move is not None:
+        searched = ts["search"]
+        going_on = (searched >= 0) & (search_dot.to(u) > 0)
+        log_boost = (searched.clamp_min(0) * math.log(SEARCH_SPEEDUP)).clamp_max(_SEARCH_MAX_LOG_BOOST)
+        boost = torch.where(going_on, log_boost.exp(), 1.0)
+        new_search = torch.where(going_on, searched + 1, -1.0)
+        # Where the search ends, level 1's momentum restarts: it holds the search's growth.
+        ending = (searched >= 0) & ~going_on
+        exp_avg = exp_avg.clone()
+        exp_avg[:, 0] = torch.where(ending, 0.0, exp_avg[:, 0])
+
     # Each level's direction from its hypergradient.
     count = ts["step"]  # number of level updates so far == steps taken before this one
     beta1, beta2, eps, is_adam = _level_constants(tuple(levels), u.dtype, u.device)
-    m = torch.lerp(ts["exp_avg"], hyper, 1 - beta1)
+    m = torch.lerp(exp_avg, hyper, 1 - beta1)
     v = beta2 * ts["exp_avg_sq"] + (1 - beta2) * hyper * hyper
     bc1 = 1 - beta1**count
     bc2 = 1 - beta2**count
@@ -248,6 +323,9 @@ def _tower_step_tensors(
     step_k: Tensor | float = levels[-1].lr
     for k in range(d, 0, -1):
         change = (step_k * direction[:, k - 1]).clamp(-MAX_LOG_CHANGE, MAX_LOG_CHANGE)
+        if k == 1 and boost is not None:
+            searched_move = torch.minimum(change, (change * boost).clamp_min(-max_move))
+            change = torch.where((change < 0) & (boost > 1), searched_move, change)
         new_u[:, k - 1] = (u[:, k - 1] - change).clamp(-LOG_STEP_BOUND, LOG_STEP_BOUND)
         step_k = new_u[:, k - 1].exp()
 
@@ -257,12 +335,21 @@ def _tower_step_tensors(
     ts["exp_avg_sq"].copy_(torch.where(has_prev, v, ts["exp_avg_sq"]))
     ts["prev_dir"].copy_(torch.where(has_prev, direction, prev_dir))
     ts["hypergrad"].copy_(torch.where(has_prev, hyper, ts["hypergrad"]))
+    if new_search is not None:
+        ts["search"].copy_(torch.where(has_prev, new_search, ts["search"]))
     prev_step.copy_(u.exp())
     prev_step[:, 0] *= lr
     return prev_step[:, 0].clone()
 
 
-def _tower_step_host(ts: dict[str, Tensor], levels: Sequence[Level], update_dot: Tensor, lr: float | Tensor) -> Tensor:
+def _tower_step_host(
+    ts: dict[str, Tensor],
+    levels: Sequence[Level],
+    update_dot: Tensor,
+    lr: float | Tensor,
+    search_dot: Tensor | None = None,
+    search_max_move: float | None = None,
+) -> Tensor:
     """:func:`tower_step` for state on the CPU, in Python floats (the same float64 math, not
     tensor ops: a tower's few scalars cost more in per-op overhead than in arithmetic).
 
@@ -274,6 +361,10 @@ def _tower_step_host(ts: dict[str, Tensor], levels: Sequence[Level], update_dot:
     exp_avg, exp_avg_sq = ts["exp_avg"].tolist(), ts["exp_avg_sq"].tolist()
     count = float(ts["step"])
     lr_value = float(lr)
+    log_growth = math.log(SEARCH_SPEEDUP) if search_dot is not None and search_max_move is not None else None
+    searched = ts["search"].tolist() if log_growth is not None else []
+    max_move = MAX_LOG_CHANGE if search_max_move is None else search_max_move
+    search_dots = search_dot.tolist() if search_dot is not None else []
     if count > 0:
         hyper_all = []
         for unit, h1 in enumerate(update_dot.tolist()):
@@ -282,6 +373,14 @@ def _tower_step_host(ts: dict[str, Tensor], levels: Sequence[Level], update_dot:
                 if k:
                     scale *= -prev_dir[unit][k - 1] * prev_step[unit][k]
                 hyper.append(min(max(scale, -HYPERGRAD_BOUND), HYPERGRAD_BOUND))
+            boost = 1.0
+            if log_growth is not None and searched[unit] >= 0:
+                if search_dots[unit] > 0:
+                    boost = math.exp(min(searched[unit] * log_growth, _SEARCH_MAX_LOG_BOOST))
+                    searched[unit] += 1
+                else:  # the search ends; level 1's momentum, which holds its growth, restarts
+                    searched[unit] = -1.0
+                    exp_avg[unit][0] = 0.0
             direction = []
             for k, lv in enumerate(levels):
                 h, (b1, b2) = hyper[k], lv.betas
@@ -295,6 +394,8 @@ def _tower_step_host(ts: dict[str, Tensor], levels: Sequence[Level], update_dot:
             step_k = levels[-1].lr
             for k in range(d, 0, -1):
                 change = min(max(step_k * direction[k - 1], -MAX_LOG_CHANGE), MAX_LOG_CHANGE)
+                if k == 1:
+                    change = _search_move(change, boost, max_move)
                 u[unit][k - 1] = min(max(u[unit][k - 1] - change, -LOG_STEP_BOUND), LOG_STEP_BOUND)
                 step_k = math.exp(u[unit][k - 1])
             prev_dir[unit] = direction
@@ -302,6 +403,8 @@ def _tower_step_host(ts: dict[str, Tensor], levels: Sequence[Level], update_dot:
         for key, rows in (("log_step", u), ("exp_avg", exp_avg), ("exp_avg_sq", exp_avg_sq), ("prev_dir", prev_dir)):
             _store(ts[key], rows)
         _store(ts["hypergrad"], hyper_all)
+        if log_growth is not None:
+            _store(ts["search"], [searched])
     steps = [[math.exp(x) for x in row] for row in u]
     for row in steps:
         row[0] *= lr_value
@@ -310,8 +413,8 @@ def _tower_step_host(ts: dict[str, Tensor], levels: Sequence[Level], update_dot:
 
 
 def _store(t: Tensor, rows: list[list[float]]) -> None:
-    """Write Python floats ``rows`` [U][D] into state tensor ``t`` (one step size and level: a fill)."""
+    """Write Python floats ``rows`` [U][D] (or [1][U] for a [U] tensor) into state tensor ``t``."""
     if t.numel() == 1:
         t.fill_(rows[0][0])
     else:
-        t.copy_(torch.tensor(rows, dtype=_STATE_DTYPE))
+        t.copy_(torch.tensor(rows, dtype=_STATE_DTYPE).reshape(t.shape))

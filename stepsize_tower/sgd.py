@@ -262,6 +262,7 @@ class TowerSGD(TowerOptimizer):
         hyper_level: Level | None = None,
         sharded: bool = False,
         fused: bool | None = None,
+        growth_search: float | None = None,
     ) -> None:
         if fused is not None and not isinstance(fused, bool):
             raise ValueError(f"Invalid fused: {fused!r}; expected True, False or None")
@@ -290,6 +291,7 @@ class TowerSGD(TowerOptimizer):
             "hyper_level": hyper_level or DEFAULT_HYPER_LEVEL,
             "sharded": sharded,
             "fused": fused,
+            "growth_search": growth_search,
         }
         super().__init__(params, defaults)
 

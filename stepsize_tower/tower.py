@@ -60,7 +60,7 @@ from torch.optim import Optimizer
 from . import _chunks
 from ._first_step import check_first_step_limit, typical_scale
 from .hyper import hyper_step, init_hyper_state
-from .levels import Level, current_step_sizes, init_tower_state, tower_step
+from .levels import Level, check_growth_search, current_step_sizes, init_tower_state, tower_step
 
 __all__ = [
     "EFFECTIVE_LR_KEY",
@@ -80,6 +80,12 @@ RETREAT_MIN_FACTOR = 1e-4
 #: which the typed step size is still untested. Later, minibatch noise alone makes consecutive
 #: gradients oppose often enough that the test would cut good step sizes (measured: see README).
 RETREAT_WINDOW = 10
+
+#: The growth search goes on while ``<g_s, d_{s-1}> > SEARCH_SLOPE_KEPT <g_{s-1}, d_{s-1}>``: the
+#: loss still falls along the last step at this fraction of the rate at which the step began. On
+#: a quadratic, steps up to half the line minimizer along ``d``; with 0 (the slope's sign alone)
+#: a quadratic with curvatures 0.1 ... 1 was searched up to a = 4.5 > 2/L and blew up (measured).
+SEARCH_SLOPE_KEPT = 0.5
 
 #: Right after a retreat, the retried step is taken back again only if ``rho < -RETREAT_AGAIN_RATIO``:
 #: the new minibatch alone can make ``rho`` mildly negative, but not by this much.
@@ -241,6 +247,7 @@ class TowerOptimizer(Optimizer):
         _check_lr(defaults["lr"])
         _check_horizon(defaults.get("horizon", 0.0))
         check_first_step_limit(defaults.get("first_step_limit"))
+        check_growth_search(defaults.get("growth_search"))
         if defaults.get("granularity") not in GRANULARITIES:
             raise ValueError(f"Invalid granularity: {defaults.get('granularity')!r}; expected one of {GRANULARITIES}")
         defaults = dict(defaults)
@@ -289,6 +296,8 @@ class TowerOptimizer(Optimizer):
             _check_horizon(param_group["horizon"])
         if "first_step_limit" in param_group:
             check_first_step_limit(param_group["first_step_limit"])
+        if "growth_search" in param_group:
+            check_growth_search(param_group["growth_search"])
         _check_sharded(
             param_group.get("sharded", self.defaults.get("sharded", False)),
             param_group.get("granularity", self.defaults.get("granularity")),
@@ -446,16 +455,22 @@ class TowerOptimizer(Optimizer):
         lr0 = torch.as_tensor(group["lr"], dtype=torch.float64, device=ts["step"].device).reshape(1)
         a_prev = ts["prev_step"][:, 0] if levels else ts.get("prev_lr", lr0).expand(units)
         horizon = float(group["horizon"])
-        steps_taken = int(ts["step"])
-        may_retreat = bool(group["retreat"]) and bool(levels) and steps_taken < RETREAT_WINDOW
-        exact = horizon == 0 or may_retreat
+        search_max_move = group.get("growth_search") if levels and "search" in ts else None
+        if search_max_move is None:
+            steps_taken, searching = int(ts["step"]), False
+        else:  # one host read for both
+            counters = torch.stack([ts["step"], (ts["search"] >= 0).any().to(ts["step"].dtype)]).tolist()
+            steps_taken, searching = int(counters[0]), bool(counters[1])
+        # The start-up test runs in the first steps and for as long as the growth search goes on.
+        may_retreat = bool(group["retreat"]) and bool(levels) and (steps_taken < RETREAT_WINDOW or searching)
+        exact = horizon == 0 or may_retreat or searching
 
         zero = torch.zeros((), dtype=torch.float64, device=ts["step"].device)
         dot_u = slope_u = torch.zeros(units, dtype=torch.float64, device=zero.device)
         tangent_dots = None
         if exact or learns_hyper:
             probes = [
-                self._rule.probe(group, p, g, st, a_prev[u], exact=exact, slope=may_retreat)
+                self._rule.probe(group, p, g, st, a_prev[u], exact=exact, slope=may_retreat or searching)
                 for p, g, st, u in zip(params, grads, states, unit_of, strict=True)
             ]
             dot_u, slope_u = per_unit(pr[0] for pr in probes), per_unit(pr[1] for pr in probes)
@@ -540,7 +555,12 @@ class TowerOptimizer(Optimizer):
         if tangent_dots is not None:
             hyper_step(ts, tangent_dots, a_prev.mean(), Level(**group["hyper_level"]))
             ts["prev_lr"] = lr0
-        a0 = tower_step(ts, levels, hyper_dot, group["lr"]) if levels else lr0.expand(units)
+        if levels:
+            # Go on searching while the slope along the last step kept at least half its value.
+            search_dot = dot_u - SEARCH_SLOPE_KEPT * ts["prev_slope"] if searching else None
+            a0 = tower_step(ts, levels, hyper_dot, group["lr"], search_dot=search_dot, search_max_move=search_max_move)
+        else:
+            a0 = lr0.expand(units)
         limit = group.get("first_step_limit")  # absent in groups saved before the option existed
         if limit is not None and steps_taken == 0 and levels and self._rule.normalized:
             a0 = self._limit_first_step(group, ts, params, unit_of, a0, float(limit), sharded)
@@ -597,6 +617,8 @@ class TowerOptimizer(Optimizer):
                 st["update_ema"].zero_()
         ts["log_step"][:, 0] += factor.log()
         ts["prev_step"][:, 0] = a_new
+        if "search" in ts:  # a step too large ends the growth search
+            ts["search"].fill_(-1.0)
         ts["retreats"] += 1
         ts["retreated"].fill_(1)
         _publish_effective_lr(group, a_new)

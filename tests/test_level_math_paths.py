@@ -52,3 +52,23 @@ def test_float_and_tensor_paths_of_a_tower_step_agree(stack: str, units: int, st
             torch.testing.assert_close(host[key], tensors[key], rtol=1e-14, atol=1e-300, msg=key)
         if step > 0:  # the step really moved the levels
             assert not torch.equal(host["log_step"], _random_state(levels, units, step, seed)["log_step"])
+
+
+@pytest.mark.parametrize("units", [1, 3])
+@pytest.mark.parametrize("stack", ["adam", "adam_adam", "sgd_adam_sgd"])
+def test_float_and_tensor_paths_agree_during_the_growth_search(stack: str, units: int) -> None:
+    # reference: each other (as above), with units in, entering and leaving the growth search
+    levels = STACKS[stack]
+    for seed in range(5):
+        gen = torch.Generator().manual_seed(200 + seed)
+        host = _random_state(levels, units, 7, seed)
+        host["search"].copy_(torch.tensor([-1.0, 0.0, 4.0, 40.0])[torch.randint(0, 4, (units,), generator=gen)])
+        tensors = {k: v.clone() for k, v in host.items()}
+        dot = torch.randn(units, generator=gen, dtype=torch.float64) * 10.0
+        search_dot = torch.randn(units, generator=gen, dtype=torch.float64)
+        a_host = _tower_step_host(host, levels, dot, 0.3, search_dot, 0.5)
+        a_tensors = _tower_step_tensors(tensors, levels, dot, 0.3, search_dot, 0.5)
+        torch.testing.assert_close(a_host, a_tensors, rtol=1e-14, atol=0.0)
+        for key in host:  # atol: a level moment that nearly cancels (m ~ 5e-4 from O(1) terms)
+            torch.testing.assert_close(host[key], tensors[key], rtol=1e-14, atol=1e-15, msg=key)
+        assert not torch.equal(host["search"], _random_state(levels, units, 7, seed)["search"])
