@@ -15,24 +15,9 @@ import math
 
 import pytest
 import torch
+from small_problems import CURVATURES, network_task, quadratic
 
 from stepsize_tower import TowerAdam, TowerSGD
-
-CURVATURES = torch.linspace(0.1, 1.0, 10, dtype=torch.float64)  # largest curvature L = 1
-
-
-def _quadratic():
-    """0.5 (w - w*)^T H (w - w*) with eigenvalues 0.1 ... 1, in a random basis."""
-    gen = torch.Generator().manual_seed(0)
-    q, _ = torch.linalg.qr(torch.randn(10, 10, dtype=torch.float64, generator=gen))
-    h = q @ torch.diag(CURVATURES) @ q.T
-    target = torch.randn(10, dtype=torch.float64, generator=gen)
-
-    def loss(w: torch.Tensor) -> torch.Tensor:
-        e = w - target
-        return 0.5 * e @ h @ e
-
-    return loss
 
 
 def _run(opt: torch.optim.Optimizer, w: torch.Tensor, loss, steps: int) -> tuple[list[float], list[float]]:
@@ -53,7 +38,7 @@ def _search(opt: torch.optim.Optimizer) -> float:
 
 def test_search_grows_a_step_size_1e6_times_too_small_to_a_useful_one_within_60_steps():
     # reference: the quadratic's largest curvature L = 1, good step size 1/L (common practice)
-    loss = _quadratic()
+    loss = quadratic()
     initial = float(loss(torch.zeros(10, dtype=torch.float64)))
     results = {}
     for search in (0.5, None):
@@ -68,7 +53,7 @@ def test_search_grows_a_step_size_1e6_times_too_small_to_a_useful_one_within_60_
 
 def test_search_keeps_the_step_size_below_the_stability_limit_and_the_loss_falling():
     # reference: descent lemma, gradient descent on a quadratic with a <= 2/L never raises the loss
-    loss = _quadratic()
+    loss = quadratic()
     limit = 2.0 / float(CURVATURES.max())
     w = torch.zeros(10, dtype=torch.float64, requires_grad=True)
     opt = TowerSGD([w], lr=1e-6, growth_search=0.5)
@@ -103,7 +88,7 @@ def test_search_ends_once_a_step_kept_less_than_half_the_slope_on_a_1d_quadratic
 
 def test_a_retreat_ends_the_search():
     # reference: the growth guard's trigger, a gradient entry 10x above its peak (see tower.py)
-    loss = _quadratic()
+    loss = quadratic()
     w = torch.zeros(10, dtype=torch.float64, requires_grad=True)
     opt = TowerSGD([w], lr=1e-6, growth_search=0.5)
     _run(opt, w, loss, 5)
@@ -119,17 +104,13 @@ def test_a_retreat_ends_the_search():
 
 def test_search_speeds_up_adam_on_a_full_batch_network():
     # reference: the typed step size and the levels alone from it (a behaviour, not a value)
-    gen = torch.Generator().manual_seed(0)
-    x = torch.randn(256, 8, generator=gen)
-    y = torch.sin(x @ torch.randn(8, 1, generator=gen))
     sizes = {}
     for search in (0.5, None):
-        torch.manual_seed(0)
-        model = torch.nn.Sequential(torch.nn.Linear(8, 32), torch.nn.Tanh(), torch.nn.Linear(32, 1))
+        model, loss = network_task()
         opt = TowerAdam(model.parameters(), lr=1e-7, growth_search=search)
         for _ in range(50):
             opt.zero_grad()
-            torch.nn.functional.mse_loss(model(x), y).backward()
+            loss().backward()
             opt.step()
         sizes[search] = opt.step_sizes()[0][0]
     assert sizes[0.5] >= 1e4 * 1e-7  # measured: 4.7e-3
@@ -148,7 +129,7 @@ def test_invalid_growth_search_is_rejected_with_the_fix(value):
 
 def test_a_run_resumed_mid_search_continues_exactly():
     # reference: the same run without the interruption (common practice for checkpoints)
-    loss = _quadratic()
+    loss = quadratic()
 
     def fresh() -> tuple[torch.Tensor, TowerSGD]:
         w = torch.zeros(10, dtype=torch.float64, requires_grad=True)
@@ -171,7 +152,7 @@ def test_a_run_resumed_mid_search_continues_exactly():
 
 def test_a_state_saved_before_the_search_existed_resumes_without_it():
     # reference: the same run with growth_search=None from the same state
-    loss = _quadratic()
+    loss = quadratic()
     w = torch.zeros(10, dtype=torch.float64, requires_grad=True)
     opt = TowerSGD([w], lr=1e-6, growth_search=None)
     _run(opt, w, loss, 5)

@@ -15,36 +15,9 @@ import math
 
 import pytest
 import torch
+from small_problems import network_task, quadratic
 
 from stepsize_tower import TowerAdam, TowerSGD
-
-
-def _quadratic():
-    """0.5 (w - w*)^T H (w - w*) with eigenvalues 0.1 ... 1 (largest curvature L = 1)."""
-    gen = torch.Generator().manual_seed(0)
-    q, _ = torch.linalg.qr(torch.randn(10, 10, dtype=torch.float64, generator=gen))
-    h = q @ torch.diag(torch.linspace(0.1, 1.0, 10, dtype=torch.float64)) @ q.T
-    target = torch.randn(10, dtype=torch.float64, generator=gen)
-
-    def loss(w: torch.Tensor) -> torch.Tensor:
-        e = w - target
-        return 0.5 * e @ h @ e
-
-    return loss
-
-
-def _network_task(seed: int = 0):
-    """A small tanh network fitting a smooth synthetic target (full batch, deterministic)."""
-    gen = torch.Generator().manual_seed(seed)
-    x = torch.randn(256, 8, generator=gen)
-    y = torch.sin(x @ torch.randn(8, 1, generator=gen))
-    torch.manual_seed(seed)
-    model = torch.nn.Sequential(torch.nn.Linear(8, 32), torch.nn.Tanh(), torch.nn.Linear(32, 1))
-
-    def loss() -> torch.Tensor:
-        return torch.nn.functional.mse_loss(model(x), y)
-
-    return model, loss
 
 
 def _train(opt: torch.optim.Optimizer, loss, steps: int) -> float:
@@ -57,8 +30,8 @@ def _train(opt: torch.optim.Optimizer, loss, steps: int) -> float:
         return float(loss())
 
 
-def test_sgd_started_1e4_times_too_large_recovers_on_a_quadratic():
-    loss = _quadratic()
+def test_sgd_started_1e4_times_too_large_recovers_on_aquadratic():
+    loss = quadratic()
     w = torch.zeros(10, dtype=torch.float64, requires_grad=True)
     initial = float(loss(w.detach()))
     opt = TowerSGD([w], lr=1e4)  # 1e4 x 1/L
@@ -71,8 +44,8 @@ def test_sgd_started_1e4_times_too_large_recovers_on_a_quadratic():
 
 @pytest.mark.parametrize("too_large", [10.0, 100.0])
 def test_adam_started_1e3_to_1e4_times_too_large_recovers_on_a_network(too_large):
-    model, loss = _network_task()
-    tuned_model, tuned_loss = _network_task()
+    model, loss = network_task()
+    tuned_model, tuned_loss = network_task()
     tuned = _train(torch.optim.Adam(tuned_model.parameters(), lr=1e-2), tuned_loss, 300)  # reference: torch.optim
     opt = TowerAdam(model.parameters(), lr=too_large)
     final = _train(opt, loss, 300)
@@ -84,8 +57,8 @@ def test_adam_started_1e3_to_1e4_times_too_large_recovers_on_a_network(too_large
 
 def test_plain_fixed_rate_at_the_same_large_step_does_wreck_the_network():
     """The recovery above is the safeguard's doing: without it the same start is ruined."""
-    model, loss = _network_task()
-    tuned_model, tuned_loss = _network_task()
+    model, loss = network_task()
+    tuned_model, tuned_loss = network_task()
     tuned = _train(torch.optim.Adam(tuned_model.parameters(), lr=1e-2), tuned_loss, 300)
     final = _train(torch.optim.Adam(model.parameters(), lr=100.0), loss, 300)
     assert not final <= max(1.25 * tuned, tuned + 0.01)
@@ -101,7 +74,7 @@ def test_plain_fixed_rate_at_the_same_large_step_does_wreck_the_network():
     ids=["sgd", "momentum", "adam"],
 )
 def test_step_size_started_1e6_times_too_small_grows_1e4_times_within_300_steps(factory, good):
-    loss = _quadratic()
+    loss = quadratic()
     w = torch.zeros(10, dtype=torch.float64, requires_grad=True)
     start = good * 1e-6
     opt = factory([w], start)
@@ -154,9 +127,9 @@ def test_sgd_on_a_full_batch_network_ends_near_the_best_fixed_rate():
     # reference: torch.optim.SGD's best final loss over a grid of fixed rates
     best = math.inf
     for lr in (0.01, 0.03, 0.1, 0.3, 1.0):
-        model, loss = _network_task()
+        model, loss = network_task()
         final = _train(torch.optim.SGD(model.parameters(), lr=lr), loss, 500)
         best = min(best, final) if math.isfinite(final) else best
-    model, loss = _network_task()
+    model, loss = network_task()
     final = _train(TowerSGD(model.parameters(), lr=0.1), loss, 500)
     assert final <= max(1.25 * best, best + 0.01)
