@@ -81,6 +81,7 @@ SEARCH_SPEEDUP = 1.1
 
 #: Bound on ``n log ρ`` of the growth search's boost ``ρ^n`` (keeps it finite in float64).
 _SEARCH_MAX_LOG_BOOST = 200.0
+_LOG_SEARCH_SPEEDUP = math.log(SEARCH_SPEEDUP)
 
 #: Log step sizes are clamped to ``[-LOG_STEP_BOUND, LOG_STEP_BOUND]`` (about 1e-30 ... 1e30
 #: relative for level 0), which keeps every step size finite by construction.
@@ -300,7 +301,7 @@ def _tower_step_tensors(
     if search_dot is not None and search_max_move is not None:
         searched = ts["search"]
         going_on = (searched >= 0) & (search_dot.to(u) > 0)
-        log_boost = (searched.clamp_min(0) * math.log(SEARCH_SPEEDUP)).clamp_max(_SEARCH_MAX_LOG_BOOST)
+        log_boost = (searched.clamp_min(0) * _LOG_SEARCH_SPEEDUP).clamp_max(_SEARCH_MAX_LOG_BOOST)
         boost = torch.where(going_on, log_boost.exp(), 1.0)
         new_search = torch.where(going_on, searched + 1, -1.0)
         # Where the search ends, level 1's momentum restarts: it holds the search's growth.
@@ -361,10 +362,10 @@ def _tower_step_host(
     exp_avg, exp_avg_sq = ts["exp_avg"].tolist(), ts["exp_avg_sq"].tolist()
     count = float(ts["step"])
     lr_value = float(lr)
-    log_growth = math.log(SEARCH_SPEEDUP) if search_dot is not None and search_max_move is not None else None
-    searched = ts["search"].tolist() if log_growth is not None else []
-    max_move = MAX_LOG_CHANGE if search_max_move is None else search_max_move
+    searching = search_dot is not None and search_max_move is not None
+    searched = ts["search"].tolist() if searching else []
     search_dots = search_dot.tolist() if search_dot is not None else []
+    max_move = MAX_LOG_CHANGE if search_max_move is None else search_max_move
     if count > 0:
         hyper_all = []
         for unit, h1 in enumerate(update_dot.tolist()):
@@ -374,9 +375,9 @@ def _tower_step_host(
                     scale *= -prev_dir[unit][k - 1] * prev_step[unit][k]
                 hyper.append(min(max(scale, -HYPERGRAD_BOUND), HYPERGRAD_BOUND))
             boost = 1.0
-            if log_growth is not None and searched[unit] >= 0:
+            if searching and searched[unit] >= 0:
                 if search_dots[unit] > 0:
-                    boost = math.exp(min(searched[unit] * log_growth, _SEARCH_MAX_LOG_BOOST))
+                    boost = math.exp(min(searched[unit] * _LOG_SEARCH_SPEEDUP, _SEARCH_MAX_LOG_BOOST))
                     searched[unit] += 1
                 else:  # the search ends; level 1's momentum, which holds its growth, restarts
                     searched[unit] = -1.0
@@ -403,7 +404,7 @@ def _tower_step_host(
         for key, rows in (("log_step", u), ("exp_avg", exp_avg), ("exp_avg_sq", exp_avg_sq), ("prev_dir", prev_dir)):
             _store(ts[key], rows)
         _store(ts["hypergrad"], hyper_all)
-        if log_growth is not None:
+        if searching:
             _store(ts["search"], [searched])
     steps = [[math.exp(x) for x in row] for row in u]
     for row in steps:
