@@ -12,6 +12,8 @@ from __future__ import annotations
 import os
 import socket
 import sys
+import time
+from datetime import timedelta
 from pathlib import Path
 from typing import Any
 
@@ -31,6 +33,11 @@ WORLD = 2
 STEPS = 14  # past the retreat window (10): both the start-up and the later code paths run
 GLOBAL_BATCH = 16
 TOL = 1e-10
+
+#: A collective that not every rank joins fails after this (gloo's timeout) instead of hanging ...
+COLLECTIVE_TIMEOUT = timedelta(seconds=60)
+#: ... and a test fails when its ranks have not all finished after this (a backstop for anything else).
+JOIN_TIMEOUT_S = 300.0
 
 
 # ---------------------------------------------------------------------- helpers run in every rank
@@ -109,7 +116,7 @@ def _entry(rank: int, port: int, worker: str, out: str, args: tuple[Any, ...], w
     os.environ["MASTER_ADDR"] = "127.0.0.1"
     os.environ["MASTER_PORT"] = str(port)
     torch.set_num_threads(1)
-    dist.init_process_group("gloo", rank=rank, world_size=world)
+    dist.init_process_group("gloo", rank=rank, world_size=world, timeout=COLLECTIVE_TIMEOUT)
     try:
         result = globals()[worker](rank, *args)
         torch.save(result, Path(out) / f"rank{rank}.pt")
@@ -131,9 +138,19 @@ def _free_port() -> int:
 
 
 def _spawn(tmp_path: Path, worker: str, *args: Any, world: int = WORLD) -> list[dict[str, Any]]:
-    torch.multiprocessing.spawn(
-        _entry, args=(_free_port(), worker, str(tmp_path), args, world), nprocs=world, join=True
+    """Run ``worker`` in ``world`` ranks; a rank that raises, or any rank still running after
+    :data:`JOIN_TIMEOUT_S`, fails the test (naming the ranks) instead of hanging it."""
+    ctx = torch.multiprocessing.start_processes(
+        _entry, args=(_free_port(), worker, str(tmp_path), args, world), nprocs=world, join=False, start_method="spawn"
     )
+    deadline = time.monotonic() + JOIN_TIMEOUT_S
+    while not ctx.join(timeout=max(deadline - time.monotonic(), 0.001)):  # raises if a rank raised
+        if time.monotonic() >= deadline:
+            stuck = [rank for rank, proc in enumerate(ctx.processes) if proc.is_alive()]
+            for proc in ctx.processes:
+                if proc.is_alive():
+                    proc.kill()
+            pytest.fail(f"{worker}{args}: rank(s) {stuck} still running after {JOIN_TIMEOUT_S:.0f} s")
     return [torch.load(tmp_path / f"rank{r}.pt", weights_only=False) for r in range(world)]
 
 
