@@ -32,7 +32,11 @@ pytestmark = pytest.mark.skipif(
 WORLD = 2
 STEPS = 14  # past the retreat window (10): both the start-up and the later code paths run
 GLOBAL_BATCH = 16
-TOL = 1e-10
+#: Sharded/replicated runs against the single-process run, float64 (only the summation order
+#: differs): measured at most 1.1e-14 relative (HSDP with an "sgd" level) and 4.4e-16 absolute
+#: (on entries near 0; DDP, ZeRO, FSDP2, HSDP, every optimizer kind below).
+TOL = 1e-13
+ATOL = 2e-15
 
 #: A collective that not every rank joins fails after this (gloo's timeout) instead of hanging ...
 COLLECTIVE_TIMEOUT = timedelta(seconds=60)
@@ -154,9 +158,9 @@ def _spawn(tmp_path: Path, worker: str, *args: Any, world: int = WORLD) -> list[
     return [torch.load(tmp_path / f"rank{r}.pt", weights_only=False) for r in range(world)]
 
 
-def _assert_close(a: Any, b: Any, tol: float = TOL) -> None:
+def _assert_close(a: Any, b: Any, tol: float = TOL, atol: float = ATOL) -> None:
     ta, tb = torch.as_tensor(a, dtype=torch.float64), torch.as_tensor(b, dtype=torch.float64)
-    assert torch.allclose(ta, tb, rtol=tol, atol=tol), (a, b)
+    assert torch.allclose(ta, tb, rtol=tol, atol=atol), (a, b)
 
 
 def _flat_sizes(sizes: list[list[float]]) -> list[float]:
@@ -357,7 +361,7 @@ def test_zero_consolidated_checkpoint_resumes(tmp_path: Path) -> None:
     r0, r1 = _spawn(tmp_path, "_zero_resume_worker", str(tmp_path))
     for r in (r0, r1):
         assert r["at_load"] != r["straight"]  # the checkpoint was mid-run
-        _assert_close(_flat_sizes(r["resumed"]), _flat_sizes(r["straight"]), tol=1e-12)
+        assert r["resumed"] == r["straight"]  # measured: bitwise
     assert r0["resumed"] == r1["resumed"]
 
 
