@@ -92,6 +92,8 @@ def over(cases: list[Case], slow_unless: Callable[[Case], bool] = lambda c: True
 ALL = over(CASES)
 #: Behaviours that do not depend on the dtype: float32 in the default run, the rest with -m slow.
 ALL_F32 = over(CASES, lambda c: c.dtype == torch.float32)
+#: Behaviours where 16-bit storage matters: float32 and bfloat16 in the default run.
+ALL_F32_BF16 = over(CASES, lambda c: c.dtype != torch.float64)
 DEPTH0 = over([c for c in CASES if c.depth0])
 
 # ---------------------------------------------------------------------------- helpers
@@ -240,7 +242,7 @@ def test_depth0_with_every_default_equals_torch_optim(case: Case) -> None:
 # ---------------------------------------------------------------------------- state
 
 
-@ALL
+@ALL_F32_BF16
 def test_state_dict_round_trip_resumes_identically(case: Case) -> None:
     # reference: torch.optim's contract: state_dict / load_state_dict (through torch.save and
     # torch.load(weights_only=True)) continue exactly as the uninterrupted run
@@ -281,7 +283,7 @@ def test_copy_continues_identically(case: Case, how: str) -> None:
 # ---------------------------------------------------------------------------- step semantics
 
 
-@ALL
+@ALL_F32
 def test_maximize_equals_minimizing_the_negated_loss(case: Case) -> None:
     # reference: torch.optim's maximize flag flips the gradient's sign (docs of SGD/Adam/AdamW)
     up, down = make_params(case.dtype), make_params(case.dtype)
@@ -498,7 +500,8 @@ def test_non_contiguous_parameters_update_like_torch_optim(case: Case, layout: s
     # reference: at depth 0, torch.optim's for-loop path (foreach=False, fused=False) on the same
     # layouts; with levels, the same optimizer on a contiguous copy with contiguous gradients
     p, relayout = _layout(layout, case.dtype)
-    q = p.detach().clone().requires_grad_() if case.depth0 else p.detach().contiguous().requires_grad_()
+    contiguous = torch.contiguous_format
+    q = (p.detach().clone() if case.depth0 else p.detach().clone(memory_format=contiguous)).requires_grad_()
     if case.depth0:
         ref_opt = case.make_reference([q], foreach=False, fused=False)
         ref_relayout = relayout
