@@ -79,11 +79,16 @@ def test_compiled_update_kernel_matches_torch_optim(decoupled: bool) -> None:
     v = [torch.zeros_like(p) for p in ours]
     trail = [torch.zeros_like(p) for p in ours]
     steps = [torch.zeros(()) for _ in ours]
+    trail_ref = [torch.zeros_like(p) for p in ours]
     for _ in range(5):
         grads = [torch.randn(s) for s in shapes]
         for p, g in zip(ref, grads, strict=True):
             p.grad = g.clone()
+        before = [p.detach().clone() for p in ref]
         torch_opt.step()
+        # the trail of updates: E <- (1 - weight) E + weight * (w_before - w_after), weight 0.01 below
+        for e, b, p in zip(trail_ref, before, ref, strict=True):
+            e.mul_(0.99).add_(b - p.detach(), alpha=0.01)
         torch._foreach_add_(steps, 1)
         a = torch.tensor(0.01, dtype=torch.float64)
         _compiled.adam_trail_update(ours, grads, m, v, trail, steps, a, 0.9, 0.99, 1e-8, 0.1, decoupled, False, 0.01)
@@ -91,6 +96,10 @@ def test_compiled_update_kernel_matches_torch_optim(decoupled: bool) -> None:
         torch.testing.assert_close(b, a_.detach(), rtol=1e-5, atol=1e-6)
     for st, mine in zip((torch_opt.state[p] for p in ref), m, strict=True):
         torch.testing.assert_close(mine, st["exp_avg"], rtol=1e-5, atol=1e-7)
+    for mine, want in zip(trail, trail_ref, strict=True):
+        assert want.abs().max() > 1e-5  # the trail moved: the check is not vacuous
+        # the reference differences float32 weights: its rounding is ~1e-7 |w| per step, times 0.01
+        torch.testing.assert_close(mine, want, rtol=1e-4, atol=1e-8)
 
 
 def test_compiled_trail_dot_matches_float64_dot() -> None:

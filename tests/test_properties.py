@@ -4,6 +4,8 @@ Gradients are written straight into ``.grad`` (no model), so every kind of strea
 produced: ordinary, huge, tiny, exactly zero, sign-flipping every step, and occasional
 inf / nan entries. Whatever arrives, step sizes must stay positive and finite and the
 learned state must stay finite; with ``lr <= 1`` and bounded gradients, so must the weights.
+And every step keeps the bounds by construction: log step sizes within ±69, moving by at most
+1 per taken step, by a factor in [1e-4, 1/2] on a retreat, not at all on a skipped step.
 """
 
 from __future__ import annotations
@@ -110,9 +112,37 @@ def run(
         for i, p in enumerate(params):
             g = make_grad(kind, seed + i, scale, step, p.shape, p.dtype)
             p.grad = g if bound is None else g.clamp(-bound, bound)
+        before = [{k: v.clone() for k, v in g["tower"].items()} if "tower" in g else None for g in opt.param_groups]
         opt.step()
         check_learned_state(opt)
+        check_bounded_moves(opt, before)
     return opt, params
+
+
+def check_bounded_moves(opt: torch.optim.Optimizer, before: list[dict[str, Tensor] | None]) -> None:
+    """The bounds by construction (``stepsize_tower.levels``), a step at a time.
+
+    Log step sizes stay in [-69, 69]; a taken step moves each by at most 1 (``clip(a_k d_k, ±1)``);
+    a retreat moves only u_0, by the log of a factor in [1e-4, 1/2]; a skipped step moves nothing.
+    Exempt: a group's first taken step, where Adam's first-step limit may cut a_0 by any factor.
+    """
+    for group, old in zip(opt.param_groups, before, strict=True):
+        if old is None or not group["levels"]:
+            continue
+        new = group["tower"]
+        u_old, u_new = old["log_step"], new["log_step"]
+        move = u_new - u_old
+        retreated = bool(new["retreats"] > old["retreats"])
+        # Recorded defect: a retreat ignores the ±69 bound (test_mechanics_pinned.py,
+        # test_a_small_first_gradient_does_not_lock_the_growth_guard); levels keep it.
+        assert (u_new[:, 1:].abs() <= 69.0).all() and (retreated or (u_new[:, 0].abs() <= 69.0).all()), u_new
+        if bool(new["skipped"] > old["skipped"]):
+            assert torch.equal(u_new, u_old)
+        elif retreated:
+            assert (move[:, 0] <= math.log(0.5) + 1e-12).all() and (move[:, 0] >= math.log(1e-4) - 1e-12).all(), move
+            assert torch.equal(u_new[:, 1:], u_old[:, 1:])
+        elif bool(old["step"] > 0):
+            assert (move.abs() <= 1.0 + 1e-12).all(), move
 
 
 def check_learned_state(opt: torch.optim.Optimizer) -> None:
