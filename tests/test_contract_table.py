@@ -23,7 +23,7 @@ from typing import Any
 
 import pytest
 import torch
-from torch import Tensor, nn
+from torch import Tensor
 from torch.optim import Optimizer
 from torch.optim.lr_scheduler import LambdaLR
 
@@ -63,7 +63,7 @@ class Case:
 
     @property
     def id(self) -> str:
-        return f"{self.info.name}-{self.tower}-{[k for k, v in DTYPES.items() if v == self.dtype][0]}"
+        return f"{self.info.name}-{self.tower}-{next(k for k, v in DTYPES.items() if v == self.dtype)}"
 
     @property
     def depth0(self) -> bool:
@@ -154,7 +154,8 @@ def roundtrip(obj: Any) -> Any:
 FOR_LOOP_ROUNDING = {
     "sgd_nesterov": "d = g + mu*buf, then p -= a*d; torch: g.add(buf, alpha=mu), p.add_(d, alpha=-lr); "
     "measured max |diff| 2.4e-7 (f32), 1.1e-16 (f64)",
-    "adam": "p -= (m / denom) * (a / bc1); torch: p.addcdiv_(m, denom, value=-a/bc1); measured 6e-8 (f32), 2.8e-17 (f64)",
+    "adam": "p -= (m / denom) * (a / bc1); torch: p.addcdiv_(m, denom, value=-a/bc1); "
+    "measured 6e-8 (f32), 2.8e-17 (f64)",
     "adamw": "as adam; measured 6e-8 (f32), 2.8e-17 (f64)",
 }
 
@@ -176,7 +177,9 @@ def test_depth0_for_loop_path_equals_torch_optim_for_loop_bitwise(case: Case) ->
     _assert_depth0_matches(case, {"fused": False}, {"foreach": False})
 
 
-@pytest.mark.parametrize("case", [c for c in CASES if c.depth0 and not (c.info.cls is TowerSGD and c.dtype in SIXTEEN_BIT)])
+@pytest.mark.parametrize(
+    "case", [c for c in CASES if c.depth0 and not (c.info.cls is TowerSGD and c.dtype in SIXTEEN_BIT)]
+)
 def test_depth0_fused_path_equals_torch_optim_fused_bitwise(case: Case) -> None:
     # reference: torch.optim.SGD/Adam/AdamW(fused=True), torch's fused CPU kernel
     _assert_depth0_matches(case, {"fused": True}, {"fused": True})
@@ -200,7 +203,9 @@ DEFAULT_LR_DEFECT = "recorded defect (issue 13 item 6): TowerSGD's default lr is
 @pytest.mark.parametrize(
     "cls",
     [
-        pytest.param(TowerSGD, id="sgd", marks=pytest.mark.xfail(strict=True, raises=AssertionError, reason=DEFAULT_LR_DEFECT)),
+        pytest.param(
+            TowerSGD, id="sgd", marks=pytest.mark.xfail(strict=True, raises=AssertionError, reason=DEFAULT_LR_DEFECT)
+        ),
         pytest.param(TowerAdam, id="adam"),
         pytest.param(TowerAdamW, id="adamw"),
     ],
@@ -329,7 +334,10 @@ def test_step_runs_the_closure_with_grad_enabled_and_returns_its_loss(case: Case
 
 @with_known_defects(
     [c for c in CASES if c.dtype == torch.float32],
-    {"sgd-depth0": "recorded defect (issue 13 item 6): depth-0 SGD without momentum keeps an empty state entry per parameter"},
+    {
+        "sgd-depth0": "recorded defect (issue 13 item 6): depth-0 SGD without momentum keeps an empty state "
+        "entry per parameter"
+    },
 )
 def test_parameters_without_grad_are_skipped_like_torch_optim(case: Case) -> None:
     # reference: torch.optim skips p.grad is None: the parameter is untouched and gets no state
@@ -463,7 +471,9 @@ def _layout(name: str, dtype: torch.dtype) -> tuple[Tensor, Callable[[Tensor], T
     if name == "transposed_grad_contiguous":  # as a hook that makes the gradient contiguous leaves it
         return randn(8, 6).t().requires_grad_(), lambda g: g.contiguous()
     if name == "channels_last_grad_contiguous":
-        return randn(2, 3, 4, 4).contiguous(memory_format=torch.channels_last).requires_grad_(), lambda g: g.contiguous()
+        return randn(2, 3, 4, 4).contiguous(
+            memory_format=torch.channels_last
+        ).requires_grad_(), lambda g: g.contiguous()
     if name == "contiguous_grad_transposed":
         return randn(6, 8).requires_grad_(), lambda g: g.t().contiguous().t()
     if name == "expanded_grad":  # a zero-stride gradient (e.g. the gradient of a broadcast)

@@ -211,7 +211,9 @@ def test_log_step_sizes_stop_at_the_bound(granularity: str, n_tensors: int, sign
     # Agreeing gradients grow log a_0 by 1 per step, sign-flipping ones shrink it by 1, up to ±69.
     opt = _sign_level_run(granularity, n_tensors, sign=sign, steps=int(LOG_STEP_BOUND) + 6, lr=1e-40)
     sizes = opt.step_size_tensors()[0][:, 0]
-    torch.testing.assert_close(sizes.div(1e-40).log(), torch.full_like(sizes, sign * LOG_STEP_BOUND), rtol=1e-15, atol=0)
+    torch.testing.assert_close(
+        sizes.div(1e-40).log(), torch.full_like(sizes, sign * LOG_STEP_BOUND), rtol=1e-15, atol=0
+    )
 
 
 # ---------------------------------------------------------------------------- growth search

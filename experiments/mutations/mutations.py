@@ -41,7 +41,12 @@ MUTATIONS: list[Mutation] = [
     Mutation(
         "sgd_fused_previous_gradient_drops_l2",
         "sgd.py",
-        (('keep(st, "prev_grad", _grad(group, p, grad))', 'keep(st, "prev_grad", -grad if group["maximize"] else grad)'),),
+        (
+            (
+                'keep(st, "prev_grad", _grad(group, p, grad))',
+                'keep(st, "prev_grad", -grad if group["maximize"] else grad)',
+            ),
+        ),
         (HYPERGRAD, "-k", "sgd_l2 or sgd_nesterov_l2"),
     ),
     # --- retreats

@@ -28,7 +28,7 @@ import time
 from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
-from mutations import MUTATIONS, Mutation  # noqa: E402
+from mutations import MUTATIONS, Mutation
 
 ROOT = Path(__file__).resolve().parents[2]
 PACKAGE = ROOT / "stepsize_tower"
@@ -103,7 +103,9 @@ def main() -> int:
     parser.add_argument("--list", action="store_true", help="list the mutations and exit")
     parser.add_argument("--json", type=Path, help="also write the results to this JSON file")
     args = parser.parse_args()
-    chosen = [m for m in MUTATIONS if (args.only is None or m.name in args.only) and (args.slow or args.only or not m.slow)]
+    chosen = [
+        m for m in MUTATIONS if (args.only is None or m.name in args.only) and (args.slow or args.only or not m.slow)
+    ]
     unknown = set(args.only or ()) - {m.name for m in MUTATIONS}
     if unknown:
         parser.error(f"unknown mutation(s) {sorted(unknown)}; see --list")
