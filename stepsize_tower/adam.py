@@ -145,7 +145,7 @@ class AdamRule:
     ) -> None:
         for p, st in zip(params, states, strict=True):
             self._init(p, st)
-        if self._use_fused(group, params):
+        if self._use_fused(group, params, grads, states):
             self._update_fused(group, params, grads, states, step_sizes)
             return
         beta1, beta2 = _betas(group)
@@ -186,8 +186,11 @@ class AdamRule:
         keep(st, "beta1_tangent", t1, g.dtype)
         keep(st, "beta2_tangent", t2, g.dtype)
 
-    def _use_fused(self, group: dict[str, Any], params: list[Tensor]) -> bool:
-        return not group.get("learn_betas") and _fused.fused_applies(group, params)
+    def _use_fused(
+        self, group: dict[str, Any], params: list[Tensor], grads: list[Tensor], states: list[dict[str, Any]]
+    ) -> bool:
+        companions = [(g, st["exp_avg"], st["exp_avg_sq"]) for g, st in zip(grads, states, strict=True)]
+        return not group.get("learn_betas") and _fused.fused_applies(group, params, companions)
 
     def _update_fused(
         self,

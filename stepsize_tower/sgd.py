@@ -140,7 +140,10 @@ class SGDRule:
         dtype and device, and the momentum buffers are all present or all absent (the
         kernel's first step initializes them all, as ``torch.optim.SGD`` does).
         """
-        if not _fused.fused_applies(group, params):
+        companions = [
+            (g, st["momentum_buffer"]) if "momentum_buffer" in st else (g,) for g, st in zip(grads, states, strict=True)
+        ]
+        if not _fused.fused_applies(group, params, companions):
             return False
         momentum = group["momentum"]
         bufs: list[Tensor] = []
