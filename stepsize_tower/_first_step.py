@@ -15,7 +15,7 @@ the geometric mean over the unit's tensors ``T`` with a nonzero root-mean-square
 (tensors are weighted alike, so a wide embedding table does not set the scale of every
 matrix). All-zero tensors carry no scale; a unit with none is not limited. The levels then
 take over from the limited value. ``c`` is the ``first_step_limit`` option (default
-:data:`stepsize_tower.defaults.DEFAULT_FIRST_STEP_LIMIT`, measured; ``None`` turns it off).
+:data:`stepsize_tower.options.DEFAULT_FIRST_STEP_LIMIT`, measured; ``None`` turns it off).
 
 Sharded groups reduce exactly: under FSDP2 every rank holds a shard of every tensor (the
 squares and counts are summed per tensor across ranks), under ZeroRedundancyOptimizer every
@@ -24,7 +24,6 @@ tensor lives whole on one rank (the logs and counts are summed).
 
 from __future__ import annotations
 
-import math
 from typing import Any
 
 import torch
@@ -33,18 +32,7 @@ from torch import distributed as dist
 
 from . import _chunks
 
-__all__ = ["check_first_step_limit", "typical_scale"]
-
-
-def check_first_step_limit(limit: Any) -> None:
-    """Raise ``ValueError`` unless ``limit`` is None or a finite number > 0."""
-    if limit is None:
-        return
-    if isinstance(limit, bool) or not isinstance(limit, (int, float)) or not (math.isfinite(limit) and limit > 0):
-        raise ValueError(
-            f"Invalid first_step_limit: {limit!r}; expected a number > 0 (the first step moves weights by at most "
-            "that many times their typical size) or None to turn the limit off"
-        )
+__all__ = ["typical_scale"]
 
 
 def typical_scale(

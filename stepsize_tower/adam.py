@@ -9,10 +9,16 @@ import torch
 from torch import Tensor
 
 from . import _chunks, _compiled, _fused
-from ._docs import TOWER_ARGS
 from ._state import keep
-from .defaults import DEFAULT_FIRST_STEP_LIMIT, DEFAULT_HORIZON, DEFAULT_HYPER_LEVEL
-from .levels import Level, resolve_levels
+from .levels import Level
+from .options import (
+    ADAM_OPTIONS,
+    DEFAULT_FIRST_STEP_LIMIT,
+    DEFAULT_HORIZON,
+    DEFAULT_HYPER_LEVEL,
+    TOWER_OPTIONS,
+    resolve_levels,
+)
 from .tower import TowerOptimizer
 
 __all__ = ["AdamRule", "TowerAdam", "TowerAdamW"]
@@ -304,21 +310,21 @@ class AdamRule:
 
 
 class TowerAdam(TowerOptimizer):
-    __doc__ = rf"""Adam whose step size is learned online by a tower of hypergradient levels.
+    r"""Adam whose step size is learned online by a tower of hypergradient levels.
 
     .. math::
-        \begin{{aligned}}
-        &g_s = \nabla L_s(w_{{s-1}}) + \lambda w_{{s-1}}, \quad
-         m_s = \beta_1 m_{{s-1}} + (1-\beta_1) g_s, \quad
-         v_s = \beta_2 v_{{s-1}} + (1-\beta_2) g_s^2 \\
-        &d_{{0,s}} = \frac{{m_s / (1-\beta_1^s)}}{{\sqrt{{v_s/(1-\beta_2^s)}} + \epsilon}}
-         \quad(\text{{AdamW: }} + \lambda w_{{s-1}} \text{{ and no }} \lambda \text{{ in }} g_s) \\
-        &\hat h_{{1,s}} = -\Big\langle g_s,\; \sum_{{j<s}} \gamma^{{s-1-j}} a_{{0,j}} d_{{0,j}} \Big\rangle
-         \qquad \text{{(hypergradient of }} \log a_0 \text{{; }} \gamma = 0 \text{{: one step back)}} \\
-        &\text{{levels }} D \dots 1:\; \log a_{{k-1,s}} = \log a_{{k-1,s-1}}
-         - \mathrm{{clip}}(a_{{k,s}}\, d_{{k,s}}, \pm 1) \\
-        &w_s = w_{{s-1}} - a_{{0,s}}\, d_{{0,s}}, \qquad a_{{0,s}} = \mathrm{{lr}} \cdot e^{{u_{{0,s}}}}
-        \end{{aligned}}
+        \begin{aligned}
+        &g_s = \nabla L_s(w_{s-1}) + \lambda w_{s-1}, \quad
+         m_s = \beta_1 m_{s-1} + (1-\beta_1) g_s, \quad
+         v_s = \beta_2 v_{s-1} + (1-\beta_2) g_s^2 \\
+        &d_{0,s} = \frac{m_s / (1-\beta_1^s)}{\sqrt{v_s/(1-\beta_2^s)} + \epsilon}
+         \quad(\text{AdamW: } + \lambda w_{s-1} \text{ and no } \lambda \text{ in } g_s) \\
+        &\hat h_{1,s} = -\Big\langle g_s,\; \sum_{j<s} \gamma^{s-1-j} a_{0,j} d_{0,j} \Big\rangle
+         \qquad \text{(hypergradient of } \log a_0 \text{; } \gamma = 0 \text{: one step back)} \\
+        &\text{levels } D \dots 1:\; \log a_{k-1,s} = \log a_{k-1,s-1}
+         - \mathrm{clip}(a_{k,s}\, d_{k,s}, \pm 1) \\
+        &w_s = w_{s-1} - a_{0,s}\, d_{0,s}, \qquad a_{0,s} = \mathrm{lr} \cdot e^{u_{0,s}}
+        \end{aligned}
 
     With ``depth=0`` this is exactly :class:`torch.optim.Adam` (``TowerAdamW``:
     :class:`torch.optim.AdamW`). The update uses torch's fused Adam kernel where it
@@ -328,29 +334,16 @@ class TowerAdam(TowerOptimizer):
 
     Args:
         params: iterable of parameters or parameter groups.
-        lr: initial step size, and the outer factor any scheduler rescales (default: 1e-3).
-        betas: coefficients of the running averages (default: (0.9, 0.999)).
-        eps: added to the denominator (default: 1e-8).
-        weight_decay: L2 penalty λ (TowerAdamW: decoupled decay) (default: 0; TowerAdamW: 1e-2).
-        fused: use torch's fused kernel for the update; None picks it when the
-            parameters allow (default: None).
-        learn_betas: learn β1 and β2 online as well, in logit space, with closed-form
-            hypergradients (see :class:`AdamRule`); uses the unfused update (default: False).
-        hyper_level: the :class:`Level` that learns the betas (default: Adam-like, lr 0.01).
-        compiled: run the step as two kernels compiled with ``torch.compile`` (a read pass
-            for the hypergradient, then one loop that updates weights, moments and the trail
-            together) instead of torch's fused kernel plus three passes. Same results up to
-            float32 rounding. The first step compiles (seconds); needs float32 parameters,
-            ``granularity="group"``, ``horizon > 0`` and a working inductor backend (a C++
-            compiler on CPU), and silently uses the default path otherwise (default: False).
-        first_step_limit: with levels, the first step size is cut to
-            ``min(a_0, first_step_limit * s)``, ``s`` the geometric mean over the group's
-            nonzero tensors of their root-mean-square entry: an Adam step moves every
-            weight by about ``a_0``, and a first step larger than the weights themselves
-            wrecks the model where the start-up test cannot see it. ``None`` turns it off
-            (default: 0.5, measured; see :mod:`stepsize_tower._first_step`).
-{TOWER_ARGS}
+{args}
+
+    .. note::
+        Step sizes are learned in log space (``a = lr * exp(u)``), so they stay positive
+        without clamping, and ``lr`` is an outer factor: a learning-rate scheduler that
+        rewrites ``group["lr"]`` rescales the learned step size instead of replacing it.
+        :meth:`step_sizes` returns the values in use.
     """
+
+    _options = ADAM_OPTIONS + TOWER_OPTIONS
 
     _decoupled = False
     _default_weight_decay = 0.0
@@ -379,16 +372,6 @@ class TowerAdam(TowerOptimizer):
     ) -> None:
         if weight_decay is None:
             weight_decay = self._default_weight_decay
-        if not 0.0 <= eps:
-            raise ValueError(f"Invalid epsilon value: {eps}; expected eps >= 0")
-        if len(betas) != 2 or not all(0.0 <= b < 1.0 for b in betas):
-            raise ValueError(f"Invalid betas: {betas}; expected two numbers in [0, 1)")
-        if learn_betas and not all(0.0 < b < 1.0 for b in betas):
-            raise ValueError(f"learn_betas=True needs initial betas in (0, 1); got betas={betas}")
-        if not isinstance(compiled, bool):
-            raise ValueError(f"Invalid compiled: {compiled!r}; expected True or False")
-        if not 0.0 <= weight_decay:
-            raise ValueError(f"Invalid weight_decay value: {weight_decay}; expected weight_decay >= 0")
         defaults = {
             "lr": lr,
             "betas": tuple(betas),

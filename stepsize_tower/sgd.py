@@ -9,10 +9,9 @@ import torch
 from torch import Tensor
 
 from . import _chunks, _fused
-from ._docs import TOWER_ARGS
 from ._state import keep
-from .defaults import DEFAULT_HYPER_LEVEL, default_horizon
-from .levels import Level, resolve_levels
+from .levels import Level
+from .options import DEFAULT_HYPER_LEVEL, SGD_OPTIONS, TOWER_OPTIONS, default_horizon, resolve_levels
 from .tower import TowerOptimizer
 
 __all__ = ["SGDRule", "TowerSGD"]
@@ -213,38 +212,35 @@ def _move(p: Tensor, d: Tensor, a: Tensor | float) -> None:
 
 
 class TowerSGD(TowerOptimizer):
-    __doc__ = rf"""SGD whose step size is learned online by a tower of hypergradient levels.
+    r"""SGD whose step size is learned online by a tower of hypergradient levels.
 
     .. math::
-        \begin{{aligned}}
-        &g_s = \nabla L_s(w_{{s-1}}) + \lambda w_{{s-1}}, \qquad
-         b_s = \mu b_{{s-1}} + (1-\tau) g_s, \qquad
-         d_{{0,s}} = g_s \;|\; b_s \;|\; g_s + \mu b_s \\
-        &\hat h_{{1,s}} = -\Big\langle g_s,\; \sum_{{j<s}} \gamma^{{s-1-j}} a_{{0,j}} d_{{0,j}} \Big\rangle
-         \qquad \text{{(hypergradient of }} \log a_0 \text{{; }} \gamma = 0 \text{{: one step back)}} \\
-        &\text{{levels }} D \dots 1:\; \log a_{{k-1,s}} = \log a_{{k-1,s-1}}
-         - \mathrm{{clip}}(a_{{k,s}}\, d_{{k,s}}, \pm 1)
-         \qquad\text{{(see }} \texttt{{stepsize\_tower.levels}} \text{{)}} \\
-        &w_s = w_{{s-1}} - a_{{0,s}}\, d_{{0,s}}, \qquad a_{{0,s}} = \mathrm{{lr}} \cdot e^{{u_{{0,s}}}}
-        \end{{aligned}}
+        \begin{aligned}
+        &g_s = \nabla L_s(w_{s-1}) + \lambda w_{s-1}, \qquad
+         b_s = \mu b_{s-1} + (1-\tau) g_s, \qquad
+         d_{0,s} = g_s \;|\; b_s \;|\; g_s + \mu b_s \\
+        &\hat h_{1,s} = -\Big\langle g_s,\; \sum_{j<s} \gamma^{s-1-j} a_{0,j} d_{0,j} \Big\rangle
+         \qquad \text{(hypergradient of } \log a_0 \text{; } \gamma = 0 \text{: one step back)} \\
+        &\text{levels } D \dots 1:\; \log a_{k-1,s} = \log a_{k-1,s-1}
+         - \mathrm{clip}(a_{k,s}\, d_{k,s}, \pm 1)
+         \qquad\text{(see } \texttt{stepsize\_tower.levels} \text{)} \\
+        &w_s = w_{s-1} - a_{0,s}\, d_{0,s}, \qquad a_{0,s} = \mathrm{lr} \cdot e^{u_{0,s}}
+        \end{aligned}
 
     With ``depth=0`` this is exactly :class:`torch.optim.SGD`.
 
     Args:
         params: iterable of parameters or parameter groups.
-        lr: initial step size, and the outer factor any scheduler rescales (default: 1e-2).
-        momentum: momentum factor μ (default: 0).
-        dampening: dampening τ for momentum (default: 0).
-        nesterov: use Nesterov momentum (default: False).
-        weight_decay: L2 penalty λ, part of the loss (default: 0).
-        learn_momentum: learn μ online as well, in logit space, with the closed-form
-            hypergradient ``-a_0 <g_s, ∂d_{{0,s-1}}/∂μ>`` (default: False).
-        hyper_level: the :class:`Level` that learns μ (default: Adam-like, lr 0.01).
-        fused: use torch's fused SGD kernel for the update; None picks it when the
-            parameters allow (one CPU/CUDA float dtype and device; not with
-            ``learn_momentum``) (default: None).
-{TOWER_ARGS}
+{args}
+
+    .. note::
+        Step sizes are learned in log space (``a = lr * exp(u)``), so they stay positive
+        without clamping, and ``lr`` is an outer factor: a learning-rate scheduler that
+        rewrites ``group["lr"]`` rescales the learned step size instead of replacing it.
+        :meth:`step_sizes` returns the values in use.
     """
+
+    _options = SGD_OPTIONS + TOWER_OPTIONS
 
     def __init__(
         self,
@@ -267,18 +263,6 @@ class TowerSGD(TowerOptimizer):
         fused: bool | None = None,
         growth_search: float | None = None,
     ) -> None:
-        if fused is not None and not isinstance(fused, bool):
-            raise ValueError(f"Invalid fused: {fused!r}; expected True, False or None")
-        if learn_momentum and not 0.0 < momentum < 1.0:
-            raise ValueError(f"learn_momentum=True needs an initial momentum in (0, 1); got momentum={momentum}")
-        if not 0.0 <= momentum < 1.0:
-            raise ValueError(f"Invalid momentum value: {momentum}; expected 0 <= momentum < 1")
-        if not 0.0 <= dampening <= 1.0:
-            raise ValueError(f"Invalid dampening value: {dampening}; expected 0 <= dampening <= 1")
-        if weight_decay < 0.0:
-            raise ValueError(f"Invalid weight_decay value: {weight_decay}; expected weight_decay >= 0")
-        if nesterov and (momentum <= 0 or dampening != 0):
-            raise ValueError("Nesterov momentum requires momentum > 0 and dampening = 0")
         defaults = {
             "lr": lr,
             "momentum": momentum,

@@ -48,9 +48,8 @@ initialized process group it does nothing: no collective is called.
 from __future__ import annotations
 
 import functools
-import math
 from collections.abc import Callable, Iterable, Sequence
-from typing import Any, Protocol
+from typing import Any, ClassVar, Protocol
 
 import torch
 from torch import Tensor
@@ -58,13 +57,14 @@ from torch import distributed as dist
 from torch.optim import Optimizer
 
 from . import _chunks
-from ._first_step import check_first_step_limit, typical_scale
-from .hyper import hyper_step, init_hyper_state
-from .levels import Level, check_growth_search, current_step_sizes, init_tower_state, tower_step
+from ._first_step import typical_scale
+from .hyperparams import hyperparam_step, init_hyperparam_state
+from .levels import Level, current_step_sizes, init_tower_state, tower_step
+from .options import TOWER_OPTIONS, Option, args_doc, check_defaults, check_group, fill_missing, level_spec
+from .search import keeps_searching
 
 __all__ = [
     "EFFECTIVE_LR_KEY",
-    "GRANULARITIES",
     "RETREAT_AGAIN_RATIO",
     "RETREAT_GROWTH",
     "RETREAT_MIN_FACTOR",
@@ -81,12 +81,6 @@ RETREAT_MIN_FACTOR = 1e-4
 #: gradients oppose often enough that the test would cut good step sizes (measured: see README).
 RETREAT_WINDOW = 10
 
-#: The growth search goes on while ``<g_s, d_{s-1}> > SEARCH_SLOPE_KEPT <g_{s-1}, d_{s-1}>``: the
-#: loss still falls along the last step at this fraction of the rate at which the step began. On
-#: a quadratic, steps up to half the line minimizer along ``d``; with 0 (the slope's sign alone)
-#: a quadratic with curvatures 0.1 ... 1 was searched up to a = 4.5 > 2/L and blew up (measured).
-SEARCH_SLOPE_KEPT = 0.5
-
 #: Right after a retreat, the retried step is taken back again only if ``rho < -RETREAT_AGAIN_RATIO``:
 #: the new minibatch alone can make ``rho`` mildly negative, but not by this much.
 RETREAT_AGAIN_RATIO = 10.0
@@ -98,8 +92,6 @@ RETREAT_AGAIN_RATIO = 10.0
 #: so the step size is cut to ``a / (1 + r)``. The trail of updates is cleared: it held the
 #: unstable steps.
 RETREAT_GROWTH = 10.0
-
-GRANULARITIES = ("group", "tensor")
 
 #: Group key under which every step publishes the level-0 step size in effect, a 0-dim float64
 #: tensor (no host read): ``group["lr"] * exp(u_0)`` as used by the last taken step, or after a
@@ -193,35 +185,8 @@ def _levels_from(key: tuple[tuple[str, float, tuple[float, ...], float], ...]) -
     return tuple(Level(kind=k, lr=lr, betas=(betas[0], betas[1]), eps=eps) for k, lr, betas, eps in key)
 
 
-def _level_spec(level: Level | dict[str, Any]) -> dict[str, Any]:
-    """A plain dict (not a dataclass) so checkpoints load with ``torch.load(weights_only=True)``."""
-    lv = level if isinstance(level, Level) else Level(**level)
-    return {"kind": lv.kind, "lr": lv.lr, "betas": tuple(lv.betas), "eps": lv.eps}
-
-
 def _level_specs(levels: Iterable[Level | dict[str, Any]]) -> list[dict[str, Any]]:
-    return [_level_spec(lv) for lv in levels]
-
-
-def _check_lr(lr: float | Tensor) -> None:
-    value = lr.item() if isinstance(lr, Tensor) else lr
-    if not (isinstance(value, (int, float)) and math.isfinite(value) and value >= 0):
-        raise ValueError(f"Invalid learning rate: {lr!r}; expected a finite number >= 0")
-
-
-def _check_sharded(sharded: Any, granularity: Any) -> None:
-    if not isinstance(sharded, bool):
-        raise ValueError(f"Invalid sharded: {sharded!r}; expected True or False")
-    if sharded and granularity != "group":
-        raise ValueError(
-            f"sharded=True needs granularity='group' (got {granularity!r}): "
-            "ranks hold different tensors, so per-tensor step sizes cannot be matched up"
-        )
-
-
-def _check_horizon(horizon: float) -> None:
-    if not (isinstance(horizon, (int, float)) and 0.0 <= horizon < 1.0):
-        raise ValueError(f"Invalid horizon: {horizon!r}; expected 0 <= horizon < 1 (0 = one step back)")
+    return [level_spec(lv) for lv in levels]
 
 
 class TowerOptimizer(Optimizer):
@@ -242,18 +207,20 @@ class TowerOptimizer(Optimizer):
     """
 
     _rule: BaseRule
+    #: This class's options (:mod:`stepsize_tower.options`): checks, docs, legacy values.
+    _options: ClassVar[tuple[Option, ...]] = TOWER_OPTIONS
+
+    def __init_subclass__(cls, **kwargs: Any) -> None:
+        super().__init_subclass__(**kwargs)
+        if cls.__doc__ and "{args}" in cls.__doc__:
+            cls.__doc__ = cls.__doc__.replace("{args}", args_doc(cls._options, cls.__init__))
 
     def __init__(self, params: Any, defaults: dict[str, Any]) -> None:
-        _check_lr(defaults["lr"])
-        _check_horizon(defaults.get("horizon", 0.0))
-        check_first_step_limit(defaults.get("first_step_limit"))
-        check_growth_search(defaults.get("growth_search"))
-        if defaults.get("granularity") not in GRANULARITIES:
-            raise ValueError(f"Invalid granularity: {defaults.get('granularity')!r}; expected one of {GRANULARITIES}")
+        check_defaults(self._options, defaults)
         defaults = dict(defaults)
         defaults["levels"] = _level_specs(defaults["levels"])
         if "hyper_level" in defaults:
-            defaults["hyper_level"] = _level_spec(defaults["hyper_level"])
+            defaults["hyper_level"] = level_spec(defaults["hyper_level"])
         self._rule = self._make_rule()
         super().__init__(params, defaults)
 
@@ -261,11 +228,7 @@ class TowerOptimizer(Optimizer):
         super().__setstate__(state)
         self._rule = self._make_rule()  # not pickled by torch's Optimizer.__getstate__
         for group in self.param_groups:
-            group.setdefault("retreat", True)
-            group.setdefault("granularity", "group")
-            group.setdefault("maximize", False)
-            group.setdefault("horizon", 0.0)
-            group.setdefault("sharded", False)
+            fill_missing(self._options, group)
             if _TOWER_KEY in group:
                 for key in ("retreated", "peak_gmax"):
                     group[_TOWER_KEY].setdefault(key, torch.zeros_like(group[_TOWER_KEY]["step"]))
@@ -289,19 +252,8 @@ class TowerOptimizer(Optimizer):
         if "levels" in param_group:
             param_group["levels"] = _level_specs(param_group["levels"])
         if "hyper_level" in param_group:
-            param_group["hyper_level"] = _level_spec(param_group["hyper_level"])
-        if "lr" in param_group:
-            _check_lr(param_group["lr"])
-        if "horizon" in param_group:
-            _check_horizon(param_group["horizon"])
-        if "first_step_limit" in param_group:
-            check_first_step_limit(param_group["first_step_limit"])
-        if "growth_search" in param_group:
-            check_growth_search(param_group["growth_search"])
-        _check_sharded(
-            param_group.get("sharded", self.defaults.get("sharded", False)),
-            param_group.get("granularity", self.defaults.get("granularity")),
-        )
+            param_group["hyper_level"] = level_spec(param_group["hyper_level"])
+        check_group(self._options, param_group, self.defaults)
         param_group.pop(_TOWER_KEY, None)  # learned state is never shared between groups
         super().add_param_group(param_group)
 
@@ -402,7 +354,7 @@ class TowerOptimizer(Optimizer):
             ts = init_tower_state(_levels_of(group), self._units(group, len(group["params"])), device)
             hyper = self._rule.hyper_initial(group)
             if hyper:
-                ts.update(init_hyper_state(hyper, device))
+                ts.update(init_hyperparam_state(hyper, device))
             group[_TOWER_KEY] = ts
         return ts
 
@@ -553,11 +505,11 @@ class TowerOptimizer(Optimizer):
             return
         ts["retreated"].fill_(0)
         if tangent_dots is not None:
-            hyper_step(ts, tangent_dots, a_prev.mean(), Level(**group["hyper_level"]))
+            hyperparam_step(ts, tangent_dots, a_prev.mean(), Level(**group["hyper_level"]))
             ts["prev_lr"] = lr0
         if levels:
             # Go on searching while the slope along the last step kept at least half its value.
-            search_dot = dot_u - SEARCH_SLOPE_KEPT * ts["prev_slope"] if searching else None
+            search_dot = keeps_searching(dot_u, ts["prev_slope"]) if searching else None
             a0 = tower_step(ts, levels, hyper_dot, group["lr"], search_dot=search_dot, search_max_move=search_max_move)
         else:
             a0 = lr0.expand(units)

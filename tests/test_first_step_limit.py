@@ -17,7 +17,7 @@ from scipy.stats import gmean
 from torch import nn
 
 from stepsize_tower import TowerAdam, TowerAdamW
-from stepsize_tower.defaults import DEFAULT_FIRST_STEP_LIMIT
+from stepsize_tower.options import DEFAULT_FIRST_STEP_LIMIT
 
 
 def _model(zero_last: bool = False) -> nn.Module:
