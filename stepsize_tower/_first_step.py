@@ -66,10 +66,22 @@ def typical_scale(
     present = rms > 0
     logs = torch.where(present, rms.clamp(min=torch.finfo(dtype).tiny).log(), 0.0)
     index = torch.tensor(unit_of, dtype=torch.long, device=device)
-    log_sum = torch.zeros(units, dtype=dtype, device=device).index_add_(0, index, logs)
-    count = torch.zeros(units, dtype=dtype, device=device).index_add_(0, index, present.to(dtype))
+    log_sum = _sum_into_units(logs, index, units)
+    count = _sum_into_units(present.to(dtype), index, units)
     if sharded and not per_tensor_shards:
         packed = torch.cat([log_sum, count])
         dist.all_reduce(packed, op=dist.ReduceOp.SUM, group=reduce_group)
         log_sum, count = packed[:units], packed[units:]
     return torch.where(count > 0, (log_sum / count.clamp(min=1.0)).exp(), 0.0)
+
+
+def _sum_into_units(values: Tensor, index: Tensor, units: int) -> Tensor:
+    """``out[u] = Σ_{i: index[i] = u} values[i]``, float64, shape [units].
+
+    Under ``torch.compile`` as a product with a one-hot matrix: inductor's CPU code for a
+    float64 ``index_add_`` into a one-element buffer fails to generate (torch 2.13).
+    """
+    if torch.compiler.is_compiling():
+        onehot = (index[:, None] == torch.arange(units, device=index.device)[None, :]).to(values.dtype)
+        return values @ onehot
+    return torch.zeros(units, dtype=values.dtype, device=values.device).index_add_(0, index, values)

@@ -42,9 +42,13 @@ def fused_applies(group: dict[str, Any], params: list[Tensor], companions: Seque
     moments, momentum buffer). torch's fused kernels pair elements by memory position, so a
     strided slice, or a gradient whose layout differs from its parameter's (e.g. assigned by a
     hook), would be updated wrongly: such groups take the reference path instead.
-    ``group["fused"]`` set to False turns it off.
+    ``group["fused"]`` set to False turns it off. Under ``torch.compile`` the reference ops are
+    traced instead: torch's fused kernels have no fake implementation for a tensor step size,
+    and the compiler fuses the elementwise update itself.
     """
     if group.get("fused") is False:
+        return False
+    if torch.compiler.is_compiling():  # no fake kernel for a tensor step size: inductor fuses the reference ops
         return False
     if not all(p.device.type in _FUSED_DEVICES and p.dtype.is_floating_point for p in params):
         return False
