@@ -1,11 +1,9 @@
 r"""Compiled (torch.compile / inductor) kernels for the Adam update with the trail of updates.
 
 :func:`two_pass_dot` and :func:`adam_trail_update` are the step of ``TowerAdam(compiled=True)``
-(:meth:`stepsize_tower.adam.AdamRule.trail_dot` / ``update_with_trail``). A one-step-lagged
-variant (the dot product folded into the update loop) lives in ``experiments/fused_pass.py``,
-which measured it: it saved too little to be worth a hypergradient one step late (README). Every function
-runs the same code eagerly when :func:`available` is False (no inductor, no C++ compiler, or
-``STEPSIZE_TOWER_COMPILE=0``); the optimizer then takes its default path instead.
+(:meth:`stepsize_tower.bases.adam.AdamRule.trail_dot` / ``update_with_trail``). Every function
+runs the same code eagerly when :func:`available` is False (no inductor, no C++ compiler);
+the optimizer then takes its default path instead.
 
 Notation, per parameter tensor (float32): weights :math:`w`, gradient :math:`g`, Adam moments
 :math:`m, v`, trail :math:`E` (moving average of recent updates, weight :math:`\omega = 1-\gamma`),
@@ -26,25 +24,10 @@ size :math:`a` (a 0-dim float64 tensor), weight decay :math:`\lambda`:
 ``Δ`` is the intended update :math:`a\,d` in float32, not ``w - w'`` (which would carry the
 rounding of :math:`w'`, about ``ulp(w)``, into the trail).
 
-Kernels:
-
-* :func:`two_pass_dot` then :func:`adam_trail_update` (the default, exact order): the dot
-  product against the old trail first (it decides :math:`a`), then ONE fused loop that reads
-  :math:`w, g, m, v, E` once and writes :math:`w, m, v, E` once.
-* the lagged variant (``experiments/fused_pass.py``): ONE loop that returns :math:`h` against
-  the trail it reads and applies the step with the given :math:`a` (learned from the previous
-  step's :math:`h`). Inductor only fuses the reduction with the update when the new trail
-  goes to a second buffer (one more parameter-sized buffer); writing the trail in place
-  compiles to one kernel with two loops (a read pass for the dot product, then the update).
-
-Measured (experiments/fused_pass.py, 1 thread, shared 2-core EPYC, 10.5M parameters in 20
-tensors, ratio of medians to ``torch.optim.Adam(fused=True)``): two-pass 1.74x, lagged with a
-second trail buffer 1.86x, lagged in place 1.65x; TowerAdam today 2.36x. The one-loop variant
-is not the fastest: its stores go to a buffer not just read, so every cache line is also read
-first (write-allocate), while the in-place variant's second loop finds ``g`` and ``E`` of the
-same tensor (4 MB each) still in the last-level cache. Memory traffic bounds every variant:
-fused Adam moves 28 bytes per parameter, a step that also reads and writes ``E`` at least 36
-(1.29x), the exact two-pass order 44 (1.57x).
+The dot product against the old trail comes first (it decides :math:`a`), then ONE fused
+loop reads :math:`w, g, m, v, E` once and writes :math:`w, m, v, E` once. Memory traffic
+bounds it: fused Adam moves 28 bytes per parameter, this order 44 (1.57x). The variants
+measured against it are in ``experiments/README.md``.
 
 Compilation is per list of tensor shapes (``dynamic=False``, ``fullgraph=True``): the first
 call for a parameter list compiles (seconds to tens of seconds), later calls with new values of
@@ -56,25 +39,23 @@ recompiles once, then dynamo treats it as dynamic.
 from __future__ import annotations
 
 import logging
-import os
 from collections.abc import Callable, Sequence
 from typing import Any
 
 import torch
 from torch import Tensor
 
+from .adam_math import adam_direction
+from .grad import loss_grad
+
 __all__ = [
     "adam_trail_update",
-    "adam_trail_values",
     "available",
     "reset",
     "two_pass_dot",
 ]
 
 _log = logging.getLogger(__name__)
-
-#: Set to "0" to never compile (the eager code runs instead).
-ENV_SWITCH = "STEPSIZE_TOWER_COMPILE"
 
 _available: bool | None = None
 _compiled: dict[str, Callable[..., Any]] = {}
@@ -93,7 +74,7 @@ def available() -> bool:
     """Whether torch.compile (inductor, with a working C++ compiler) can run these kernels.
 
     Decided once per process by compiling and running a tiny kernel; any failure (no
-    inductor, no compiler, an unsupported Python, ``STEPSIZE_TOWER_COMPILE=0``) gives False.
+    inductor, no compiler, an unsupported Python) gives False.
     """
     global _available
     if _available is None:
@@ -102,8 +83,6 @@ def available() -> bool:
 
 
 def _probe_once() -> bool:
-    if os.environ.get(ENV_SWITCH, "1") == "0":
-        return False
     try:
         fn = torch.compile(_probe, dynamic=False, fullgraph=True)
         x = torch.arange(32, dtype=torch.float32)
@@ -158,10 +137,7 @@ def _check(params: Sequence[Tensor], *lists: Sequence[Tensor]) -> None:
 
 
 def _loss_grad(p: Tensor, g: Tensor, weight_decay: float, decoupled: bool, maximize: bool) -> Tensor:
-    gt = -g if maximize else g
-    if weight_decay != 0 and not decoupled:
-        gt = gt + weight_decay * p
-    return gt
+    return loss_grad(g, p, maximize=maximize, l2=0.0 if decoupled else weight_decay)
 
 
 def _adam_scalars(
@@ -195,13 +171,13 @@ def _adam_new(
     step_size, bc2_sqrt, decay = coef[0], coef[1], coef[2]
     m_new = m.lerp(gt, 1 - beta1)
     v_new = v * beta2 + (1 - beta2) * gt * gt
-    u = step_size * (m_new / (v_new.sqrt() / bc2_sqrt + eps))
+    u = step_size * adam_direction(m_new, v_new, bc2_sqrt, eps)
     if decoupled and weight_decay != 0:
         return p * (1 - decay) - u, m_new, v_new, u + decay * p
     return p - u, m_new, v_new, u
 
 
-def adam_trail_values(
+def _tensor_step(
     p: Tensor,
     g: Tensor,
     m: Tensor,
@@ -257,7 +233,7 @@ def _update_body(
 ) -> Tensor:
     coefs = _adam_scalars(steps, a, beta1, beta2, weight_decay, decoupled)
     for i, (p, g, m, v, e) in enumerate(zip(params, grads, exp_avgs, exp_avg_sqs, emas, strict=True)):
-        _, w_new, m_new, v_new, e_new = adam_trail_values(
+        _, w_new, m_new, v_new, e_new = _tensor_step(
             p, g, m, v, e, coefs[i], beta1, beta2, eps, weight_decay, decoupled, maximize, trail_weight
         )
         p.copy_(w_new)
