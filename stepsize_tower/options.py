@@ -148,6 +148,8 @@ def _is_number(x: Any) -> bool:
 
 
 def _check_lr(lr: Any) -> str | None:
+    if isinstance(lr, Tensor) and lr.numel() != 1:
+        return f"Invalid learning rate: a tensor of {lr.numel()} elements; expected a single number (one element)"
     value = lr.item() if isinstance(lr, Tensor) else lr
     if not (isinstance(value, (int, float)) and math.isfinite(value) and value >= 0):
         return f"Invalid learning rate: {lr!r}; expected a finite number >= 0"
@@ -222,6 +224,8 @@ def _check_eps(eps: Any) -> str | None:
 
 
 def _check_betas(betas: Any) -> str | None:
+    if len(betas) == 2 and isinstance(betas[0], Tensor) != isinstance(betas[1], Tensor):
+        return f"Invalid betas: {betas}; expected both floats or both tensors"
     if len(betas) != 2 or not all(0.0 <= b < 1.0 for b in betas):
         return f"Invalid betas: {betas}; expected two numbers in [0, 1)"
     return None
@@ -270,6 +274,7 @@ TOWER_OPTIONS: tuple[Option, ...] = (
         "during the first steps, when the next gradient shows the loss rose along the last step, take it "
         "back and redo it with the secant step size; for SGD, also at any step when the gradient blows up "
         "past 10x its peak",
+        _check_bool("retreat"),
         legacy=True,
     ),
     Option(
@@ -341,6 +346,7 @@ ADAM_OPTIONS: tuple[Option, ...] = (
     Option(
         "fused",
         "use torch's fused kernel for the update; None picks it when the parameters allow",
+        _check_fused,
         legacy=None,
     ),
     Option(

@@ -1,0 +1,51 @@
+"""Invalid options are rejected at construction and in ``add_param_group``; depth 0 is torch.optim, defaults included.
+
+References: ``torch.optim``'s own argument checks (``ValueError`` naming the argument) for the
+validation (common practice for a drop-in optimizer), and ``torch.optim.SGD`` / ``Adam`` /
+``AdamW`` with all their defaults for ``depth=0`` (``torch.equal`` on weights and state).
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import pytest
+import torch
+from torch import nn
+
+from stepsize_tower import TowerAdam, TowerAdamW, TowerSGD
+
+CLASSES = {"sgd": TowerSGD, "adam": TowerAdam, "adamw": TowerAdamW}
+
+
+def _p(dtype: torch.dtype = torch.float32) -> list[nn.Parameter]:
+    return [nn.Parameter(torch.zeros(2, dtype=dtype))]
+
+
+#: (id, classes, option, invalid value, regex naming the option and what is accepted)
+INVALID: list[tuple[str, tuple[str, ...], str, Any, str]] = [
+    ("granularity", ("sgd", "adam"), "granularity", "bogus", r"granularity.*'bogus'.*'group'.*'tensor'"),
+    ("retreat", ("sgd", "adam", "adamw"), "retreat", "yes", r"retreat.*'yes'.*True or False"),
+    ("fused adam", ("adam", "adamw"), "fused", "x", r"fused.*'x'.*True, False or None"),
+    ("fused sgd", ("sgd",), "fused", "x", r"fused.*'x'.*True, False or None"),
+    ("lr vector", ("sgd", "adam"), "lr", torch.tensor([0.1, 0.2]), r"(?i)learning rate.*one number|single"),
+    ("horizon", ("sgd", "adam"), "horizon", 1.5, r"horizon.*1\.5"),
+    ("first_step_limit", ("adam",), "first_step_limit", -1.0, r"first_step_limit.*-1"),
+    ("growth_search", ("sgd", "adam"), "growth_search", 2.0, r"growth_search.*2\.0"),
+    ("momentum", ("sgd",), "momentum", 1.5, r"momentum.*1\.5"),
+    ("dampening", ("sgd",), "dampening", -0.5, r"dampening.*-0\.5"),
+    ("weight_decay", ("sgd", "adam"), "weight_decay", -1.0, r"weight_decay.*-1"),
+    ("eps", ("adam",), "eps", -1.0, r"(?i)epsilon.*-1"),
+    ("betas range", ("adam",), "betas", (1.0, 0.9), r"betas.*\[0, 1\)"),
+    ("betas mixed", ("adam", "adamw"), "betas", (0.9, torch.tensor(0.999)), r"betas.*both floats or both tensors"),
+    ("compiled", ("adam",), "compiled", 1, r"compiled.*1.*True or False"),
+    ("sharded", ("sgd", "adam"), "sharded", "yes", r"sharded.*'yes'.*True or False"),
+]
+
+CASES = [(case, cls, option, value, pattern) for case, classes, option, value, pattern in INVALID for cls in classes]
+
+
+@pytest.mark.parametrize(("case", "cls", "option", "value", "pattern"), CASES, ids=[f"{c[0]}-{c[1]}" for c in CASES])
+def test_invalid_option_is_rejected_at_construction(case: str, cls: str, option: str, value: Any, pattern: str) -> None:
+    with pytest.raises(ValueError, match=pattern):
+        CLASSES[cls](_p(), **{option: value})
