@@ -401,10 +401,6 @@ def _raise_first(messages: Iterable[str | None]) -> None:
             raise ValueError(message)
 
 
-#: The options ``add_param_group`` checks when a group sets them.
-_GROUP_CHECKED = ("lr", "horizon", "first_step_limit", "growth_search")
-
-
 def check_defaults(options: Sequence[Option], defaults: Mapping[str, Any]) -> None:
     """Raise ``ValueError`` naming the first invalid constructor argument and the accepted values."""
     _raise_first(o.check(defaults[o.name]) for o in options if o.check is not None and o.name in defaults)
@@ -412,12 +408,9 @@ def check_defaults(options: Sequence[Option], defaults: Mapping[str, Any]) -> No
 
 
 def check_group(options: Sequence[Option], group: Mapping[str, Any], defaults: Mapping[str, Any]) -> None:
-    """Raise ``ValueError`` for an invalid option that ``group`` sets (``defaults`` fill the rest)."""
-    merged = {**defaults, **group}
-    checked = [o for o in options if o.check is not None and o.name in _GROUP_CHECKED and o.name in group]
-    _raise_first(o.check(merged[o.name]) for o in checked if o.check is not None)
-    sharded = {"sharded": merged.get("sharded", False), "granularity": merged.get("granularity")}
-    _raise_first([_check_bool("sharded")(sharded["sharded"]), _relations(sharded)])
+    """Raise ``ValueError`` for an invalid option of ``group``, or one that clashes with the defaults it takes."""
+    _raise_first(o.check(group[o.name]) for o in options if o.check is not None and o.name in group)
+    _raise_first([_relations({**defaults, **group})])
 
 
 def fill_missing(options: Sequence[Option], group: dict[str, Any]) -> None:

@@ -21,7 +21,16 @@ from .bases import BaseRule
 from .engine import step_group
 from .group_state import EFFECTIVE_LR_KEY, TOWER_KEY, levels_of, units_of
 from .levels import Level, current_step_sizes, init_tower_state
-from .options import TOWER_OPTIONS, Option, args_doc, check_defaults, check_group, fill_missing, level_spec
+from .options import (
+    TOWER_OPTIONS,
+    Option,
+    args_doc,
+    check_defaults,
+    check_group,
+    fill_missing,
+    level_spec,
+    resolve_levels,
+)
 
 __all__ = ["EFFECTIVE_LR_KEY", "TowerOptimizer"]
 
@@ -92,8 +101,9 @@ class TowerOptimizer(Optimizer):
 
     def add_param_group(self, param_group: dict[str, Any]) -> None:
         param_group = dict(param_group)
-        if "levels" in param_group:
-            param_group["levels"] = _level_specs(param_group["levels"])
+        if "levels" in param_group or "depth" in param_group:  # a group's own depth or levels
+            levels = resolve_levels(param_group.pop("depth", None), param_group.get("levels"))
+            param_group["levels"] = _level_specs(levels)
         if "hyper_level" in param_group:
             param_group["hyper_level"] = level_spec(param_group["hyper_level"])
         check_group(self._options, param_group, self.defaults)

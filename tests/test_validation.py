@@ -49,3 +49,27 @@ CASES = [(case, cls, option, value, pattern) for case, classes, option, value, p
 def test_invalid_option_is_rejected_at_construction(case: str, cls: str, option: str, value: Any, pattern: str) -> None:
     with pytest.raises(ValueError, match=pattern):
         CLASSES[cls](_p(), **{option: value})
+
+
+@pytest.mark.parametrize(("case", "cls", "option", "value", "pattern"), CASES, ids=[f"{c[0]}-{c[1]}" for c in CASES])
+def test_invalid_option_is_rejected_by_add_param_group(
+    case: str, cls: str, option: str, value: Any, pattern: str
+) -> None:
+    opt = CLASSES[cls](_p())
+    groups_before = len(opt.param_groups)
+    with pytest.raises(ValueError, match=pattern):
+        opt.add_param_group({"params": _p(), option: value})
+    assert len(opt.param_groups) == groups_before
+
+
+@pytest.mark.parametrize("cls", CLASSES.values(), ids=CLASSES.keys())
+def test_group_depth_is_validated_and_applied(cls: type) -> None:
+    opt = cls(_p())
+    with pytest.raises(ValueError, match=r"depth.*-1.*>= ?0"):
+        opt.add_param_group({"params": _p(), "depth": -1})
+    with pytest.raises(ValueError, match=r"levels.*'rmsprop'"):
+        opt.add_param_group({"params": _p(), "levels": ["rmsprop"]})
+    opt.add_param_group({"params": _p(), "depth": 0})
+    assert opt.param_groups[-1]["levels"] == [] and "depth" not in opt.param_groups[-1]
+    opt.add_param_group({"params": _p(), "depth": 2})
+    assert len(opt.param_groups[-1]["levels"]) == 2
