@@ -79,9 +79,12 @@ def _batch(group: dict[str, Any], state: Any, sharded: bool, owner: str) -> Batc
         return None
     for _, p in indexed:
         if p.grad.is_sparse:
-            raise RuntimeError(f"{owner} does not support sparse gradients")
+            raise RuntimeError(
+                f"{owner} does not support sparse gradients; make them dense (e.g. nn.Embedding(..., sparse=False)) "
+                "or give those parameters torch.optim.SparseAdam"
+            )
         if torch.is_complex(p):
-            raise RuntimeError(f"{owner} does not support complex parameters")
+            raise RuntimeError(f"{owner} does not support complex parameters; optimize torch.view_as_real(p) instead")
     params, grads = distributed.local_parts([p for _, p in indexed], sharded, owner)
     return Batch(params, grads, [state[p] for _, p in indexed], [i for i, _ in indexed])
 

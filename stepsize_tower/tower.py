@@ -107,8 +107,24 @@ class TowerOptimizer(Optimizer):
         if "hyper_level" in param_group:
             param_group["hyper_level"] = level_spec(param_group["hyper_level"])
         check_group(self._options, param_group, self.defaults)
+        params = param_group["params"]
+        param_group["params"] = params = [params] if isinstance(params, Tensor) else params
+        if not isinstance(params, set):  # torch rejects a set: its order is not stable
+            param_group["params"] = params = list(params)
+            self._check_params(params)
         param_group.pop(_TOWER_KEY, None)  # learned state is never shared between groups
         super().add_param_group(param_group)
+
+    def _check_params(self, params: list[Any]) -> None:
+        """Refuse what the step cannot update (complex or sparse tensors) before it is added."""
+        for p in params:
+            if isinstance(p, Tensor) and torch.is_complex(p):
+                raise ValueError(
+                    f"{self.__class__.__name__} does not support complex parameters (got {p.dtype}); "
+                    "optimize torch.view_as_real(p) of a real parameter instead"
+                )
+            if isinstance(p, Tensor) and p.layout != torch.strided:
+                raise ValueError(f"{self.__class__.__name__} does not support sparse parameters (layout {p.layout})")
 
     def state_dict(self) -> dict[str, Any]:
         """torch's optimizer state dict; under FSDP2 each per-parameter buffer as a DTensor.

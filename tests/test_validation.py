@@ -73,3 +73,21 @@ def test_group_depth_is_validated_and_applied(cls: type) -> None:
     assert opt.param_groups[-1]["levels"] == [] and "depth" not in opt.param_groups[-1]
     opt.add_param_group({"params": _p(), "depth": 2})
     assert len(opt.param_groups[-1]["levels"]) == 2
+
+
+@pytest.mark.parametrize("cls", CLASSES.values(), ids=CLASSES.keys())
+def test_complex_parameters_are_rejected_at_construction_and_in_add_param_group(cls: type) -> None:
+    with pytest.raises(ValueError, match=r"complex.*view_as_real"):
+        cls(_p(torch.complex64))
+    opt = cls(_p())
+    with pytest.raises(ValueError, match=r"complex.*view_as_real"):
+        opt.add_param_group({"params": _p(torch.complex64)})
+
+
+@pytest.mark.parametrize("cls", CLASSES.values(), ids=CLASSES.keys())
+def test_sparse_gradients_are_rejected_with_the_fix(cls: type) -> None:
+    emb = nn.Embedding(5, 3, sparse=True)
+    opt = cls(emb.parameters())
+    emb(torch.tensor([1, 2])).sum().backward()
+    with pytest.raises(RuntimeError, match=r"sparse gradients.*sparse=False"):
+        opt.step()
