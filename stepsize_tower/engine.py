@@ -50,7 +50,7 @@ def step_group(rule: BaseRule, group: dict[str, Any], state: Any, owner: str) ->
     if ts is None:
         ts = group[TOWER_KEY] = new_tower_state(group, rule.learned_initial(group), device)
     if not group["levels"] and "hyper_value" not in ts:
-        plain_step(rule, group, ts, batch, sharded)
+        plain_step(rule, group, state, ts, batch, sharded)
         return
     plan = make_plan(group, ts, rule, batch, sharded)
     m: Measurement | None = measure(rule, group, ts, plan, batch)
@@ -162,7 +162,9 @@ def apply(rule: BaseRule, group: dict[str, Any], learned: Tensor | None, plan: P
     trail.fold_update(trails, params, weight, lambda: rule.update(group, learned, params, grads, states, step_sizes))
 
 
-def plain_step(rule: BaseRule, group: dict[str, Any], ts: dict[str, Tensor], batch: Batch, sharded: bool) -> None:
+def plain_step(
+    rule: BaseRule, group: dict[str, Any], state: Any, ts: dict[str, Tensor], batch: Batch, sharded: bool
+) -> None:
     """Depth 0, nothing learned: the base optimizer itself, with non-finite steps skipped."""
     finite = grads_finite(batch.grads) if batch.grads else torch.ones((), dtype=torch.bool)
     if sharded:
@@ -177,4 +179,7 @@ def plain_step(rule: BaseRule, group: dict[str, Any], ts: dict[str, Tensor], bat
     ts["step"] += 1
     lr = torch.as_tensor(group["lr"], dtype=torch.float64, device=ts["step"].device).reshape(1)
     publish_effective_lr(group, lr)
-    rule.update(group, None, batch.params, batch.grads, batch.states, [group["lr"]] * len(batch.params))
+    rule.torch_update(group, batch.params, batch.grads, batch.states)
+    for i, st in zip(batch.indices, batch.states, strict=True):
+        if not st:  # a base that keeps nothing (plain SGD): no entry, as in torch.optim
+            del state[group["params"][i]]

@@ -312,7 +312,9 @@ TOWER_OPTIONS: tuple[Option, ...] = (
 )
 
 SGD_OPTIONS: tuple[Option, ...] = (
-    Option("lr", "initial step size, and the outer factor any scheduler rescales", _check_lr),
+    Option(
+        "lr", "initial step size, and the outer factor any scheduler rescales (torch.optim.SGD's default)", _check_lr
+    ),
     Option("momentum", "momentum factor μ", _check_momentum),
     Option("dampening", "dampening τ for momentum", _check_dampening),
     Option("nesterov", "use Nesterov momentum"),
@@ -327,7 +329,7 @@ SGD_OPTIONS: tuple[Option, ...] = (
         "fused",
         "use torch's fused SGD kernel for the update; None picks it when the parameters allow (one "
         "CPU/CUDA float dtype and device, dense and laid out like their gradients; not with "
-        "``learn_momentum``)",
+        "``learn_momentum``) and levels are on top (at ``depth=0`` None is torch.optim.SGD's default path)",
         _check_fused,
         legacy=None,
     ),
@@ -345,7 +347,8 @@ ADAM_OPTIONS: tuple[Option, ...] = (
     ),
     Option(
         "fused",
-        "use torch's fused kernel for the update; None picks it when the parameters allow",
+        "use torch's fused kernel for the update; None picks it when the parameters allow and levels are "
+        "on top (at ``depth=0`` None is torch.optim.Adam's default path)",
         _check_fused,
         legacy=None,
     ),

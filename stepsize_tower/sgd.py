@@ -49,7 +49,7 @@ class TowerSGD(TowerOptimizer):
     def __init__(
         self,
         params: Any,
-        lr: float | Tensor = 1e-2,
+        lr: float | Tensor = 1e-3,
         momentum: float = 0.0,
         dampening: float = 0.0,
         nesterov: bool = False,

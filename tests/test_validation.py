@@ -7,6 +7,7 @@ validation (common practice for a drop-in optimizer), and ``torch.optim.SGD`` / 
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from typing import Any
 
 import pytest
@@ -91,3 +92,41 @@ def test_sparse_gradients_are_rejected_with_the_fix(cls: type) -> None:
     emb(torch.tensor([1, 2])).sum().backward()
     with pytest.raises(RuntimeError, match=r"sparse gradients.*sparse=False"):
         opt.step()
+
+
+# --------------------------------------------------------------------------- depth 0 == torch.optim, defaults included
+
+PAIRS: list[tuple[str, Callable[..., Any], Callable[..., Any]]] = [
+    ("sgd", lambda ps: TowerSGD(ps, depth=0), lambda ps: torch.optim.SGD(ps)),
+    ("adam", lambda ps: TowerAdam(ps, depth=0), lambda ps: torch.optim.Adam(ps)),
+    ("adamw", lambda ps: TowerAdamW(ps, depth=0), lambda ps: torch.optim.AdamW(ps)),
+]
+
+
+def _train(make: Callable[..., Any], steps: int = 8) -> tuple[list[torch.Tensor], Any]:
+    torch.manual_seed(0)
+    model = nn.Sequential(nn.Linear(4, 3), nn.Tanh(), nn.Linear(3, 1))
+    opt = make(model.parameters())
+    gen = torch.Generator().manual_seed(1)
+    for _ in range(steps):
+        x = torch.randn(6, 4, generator=gen)
+        opt.zero_grad()
+        model(x).pow(2).mean().backward()
+        opt.step()
+    return [p.detach().clone() for p in model.parameters()], opt.state_dict()
+
+
+@pytest.mark.parametrize(("name", "ours", "theirs"), PAIRS, ids=[p[0] for p in PAIRS])
+def test_depth_zero_with_all_defaults_is_torch_optim(
+    name: str, ours: Callable[..., Any], theirs: Callable[..., Any]
+) -> None:
+    got, got_state = _train(ours)
+    want, want_state = _train(theirs)
+    for w, ref in zip(got, want, strict=True):
+        assert torch.equal(w, ref)
+    assert sorted(got_state["state"]) == sorted(want_state["state"])  # no extra (empty) entries
+    for index, ref_state in want_state["state"].items():
+        assert sorted(got_state["state"][index]) == sorted(ref_state)
+        for key, value in ref_state.items():
+            assert torch.equal(got_state["state"][index][key], value), (index, key)
+    assert got_state["param_groups"][0]["lr"] == want_state["param_groups"][0]["lr"]

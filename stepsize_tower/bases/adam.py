@@ -7,6 +7,7 @@ from typing import Any
 
 import torch
 from torch import Tensor
+from torch.optim.adam import adam as torch_adam
 
 from . import chunks, compiled, fused
 from .adam_math import Beta, adam_denominator, adam_direction, betas_in_use, bias_corrections, update_moments
@@ -127,6 +128,33 @@ class AdamRule:
             if self.decoupled and wd != 0:
                 p.mul_(1 - a * wd)
             p.sub_(adam_direction(m, v, bc2s.to(p.dtype), eps).mul_((a / bc1).to(p.dtype)))
+
+    def torch_update(
+        self, group: dict[str, Any], params: list[Tensor], grads: list[Tensor], states: list[dict[str, Any]]
+    ) -> None:
+        """``torch.optim.Adam`` / ``AdamW``'s functional update (its default path unless ``fused`` applies)."""
+        for p, st in zip(params, states, strict=True):
+            _init(p, st)
+        companions = [(g, st["exp_avg"], st["exp_avg_sq"]) for g, st in zip(grads, states, strict=True)]
+        use_fused = group.get("fused") is True and fused.fused_applies(group, params, companions)
+        beta1, beta2 = group["betas"]
+        torch_adam(
+            params,
+            grads,
+            [st["exp_avg"] for st in states],
+            [st["exp_avg_sq"] for st in states],
+            [],
+            [st["step"] for st in states],
+            fused=True if use_fused else None,
+            decoupled_weight_decay=self.decoupled,
+            amsgrad=False,
+            beta1=beta1,
+            beta2=beta2,
+            lr=group["lr"],
+            weight_decay=group["weight_decay"],
+            eps=group["eps"],
+            maximize=group["maximize"],
+        )
 
     def _update_fused(
         self,

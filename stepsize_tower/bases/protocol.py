@@ -72,6 +72,12 @@ class BaseRule(Protocol):
         """Move every weight one step with its step size ``a_0``."""
         ...
 
+    def torch_update(
+        self, group: dict[str, Any], params: list[Tensor], grads: list[Tensor], states: list[dict[str, Any]]
+    ) -> None:
+        """Depth 0, nothing learned: the update of the ``torch.optim`` optimizer itself, with ``group["lr"]``."""
+        ...
+
     def retreat(
         self,
         group: dict[str, Any],

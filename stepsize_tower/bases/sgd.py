@@ -7,6 +7,7 @@ from typing import Any
 
 import torch
 from torch import Tensor
+from torch.optim.sgd import sgd as torch_sgd
 
 from . import chunks, fused
 from .buffers import keep
@@ -98,6 +99,31 @@ class SGDRule:
                 keep(state, "prev_grad", g)
             d = g if group["momentum"] == 0 else _momentum_direction(group, _momentum(group, learned), g, state, learn)
             _move(p, d, a)
+
+    def torch_update(
+        self, group: dict[str, Any], params: list[Tensor], grads: list[Tensor], states: list[dict[str, Any]]
+    ) -> None:
+        """``torch.optim.SGD``'s functional update (its default path unless ``fused`` applies)."""
+        momentum = group["momentum"]
+        bufs: list[Tensor | None] = [st.get("momentum_buffer") if momentum != 0 else None for st in states]
+        companions = [(g,) if b is None else (g, b) for g, b in zip(grads, bufs, strict=True)]
+        same_start = all(b is None for b in bufs) or all(b is not None for b in bufs)
+        use_fused = group.get("fused") is True and same_start and fused.fused_applies(group, params, companions)
+        torch_sgd(
+            params,
+            grads,
+            bufs,
+            fused=True if use_fused else None,
+            weight_decay=group["weight_decay"],
+            momentum=momentum,
+            lr=group["lr"],
+            dampening=group["dampening"],
+            nesterov=group["nesterov"],
+            maximize=group["maximize"],
+        )
+        if momentum != 0:
+            for st, buf in zip(states, bufs, strict=True):
+                st["momentum_buffer"] = buf
 
     def retreat(
         self,
