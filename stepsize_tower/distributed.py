@@ -3,7 +3,7 @@
 Under ``ZeroRedundancyOptimizer`` or FSDP2 each rank holds only part of a group, so every dot
 product of a step is a partial sum. Before anything is decided, :func:`reduce_across_ranks`
 sums them over the group's sharding ranks (one all-reduce of a packed float64 vector; a second
-one takes the maximum of the largest gradient entry when SGD's growth guard needs it), so every
+one takes the maximum of the largest gradient entry when SGD's blow-up guard needs it), so every
 rank skips, retreats and learns the same step sizes. The sharding ranks are the default process
 group for ZeRO, the mesh's group for FSDP2, and only the sharding dimension's group under HSDP
 (a 2-D mesh whose other dimension replicates: replicas hold the same shard)

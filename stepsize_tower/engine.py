@@ -8,7 +8,7 @@
     complete   sum the partial values over the ranks of a sharded group  (measure.complete_across_ranks)
     decide     anything non-finite -> skip: nothing changes, skipped += 1;
                the loss rose (start-up test) or the gradient blew up
-               (SGD's growth guard) -> retreat, retreats += 1             (safeguards.decide / take_back)
+               (SGD's blow-up guard) -> retreat, retreats += 1             (safeguards.decide / take_back)
     learn      learned momentum / betas (hyperparams.hyperparam_step), then the levels,
                top-down, with the growth search -> a_{0,s} (levels.tower_step),
                cut by the first-step limit on the first step             (safeguards.limit_first_step)

@@ -28,7 +28,7 @@ class Measurement:
     trail_dot: Tensor | None
     #: ``<g_s, T_j>`` [H] for the learned hyperparameters, else None.
     tangent_dots: Tensor | None
-    #: The largest absolute gradient entry (SGD's growth guard), else None.
+    #: The largest absolute gradient entry (SGD's blow-up guard), else None.
     gmax: Tensor | None
     #: Whether the gradients are finite, where no dot product above has seen them.
     finite: Tensor
@@ -67,7 +67,7 @@ def measure(rule: BaseRule, group: dict[str, Any], ts: dict[str, Tensor], plan: 
                 else torch.zeros_like(ts["hyper_value"])
             )
     trail_dot = _trail_dot(rule, group, plan, batch, device) if plan.horizon > 0 and plan.levels else None
-    gmax = _grad_max(batch.grads) if plan.growth_guard else None
+    gmax = _grad_max(batch.grads) if plan.blowup_guard else None
     # Every dot product contains a gradient, and inf * 0 = nan: a non-finite gradient shows in
     # them, except on a step where no dot product saw the gradient (no trail yet).
     finite = torch.isfinite(gmax) if gmax is not None else torch.ones((), dtype=torch.bool, device=device)

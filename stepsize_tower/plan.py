@@ -48,8 +48,8 @@ class Plan:
     search_max_move: float | None
     #: The start-up test runs (the loss rose along the last step: retreat).
     startup_test: bool
-    #: SGD's growth guard runs (the largest gradient entry blew up: retreat).
-    growth_guard: bool
+    #: SGD's blow-up guard runs (the largest gradient entry blew up: retreat).
+    blowup_guard: bool
     #: The one-step dot products ``<g_s, d_{0,s-1}>`` are needed (no trail, or a test uses them).
     exact: bool
 
@@ -84,6 +84,6 @@ def make_plan(group: dict[str, Any], ts: dict[str, Tensor], rule: BaseRule, batc
         searching=searching,
         search_max_move=search_max_move,
         startup_test=startup_test,
-        growth_guard=bool(group["retreat"]) and bool(levels) and not rule.normalized,
+        blowup_guard=bool(group["retreat"]) and bool(levels) and not rule.normalized,
         exact=horizon == 0 or startup_test or searching,
     )

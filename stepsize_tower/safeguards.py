@@ -1,4 +1,4 @@
-r"""Safeguards of the step: the start-up test, SGD's growth guard, and the first-step limit.
+r"""Safeguards of the step: the start-up test, SGD's blow-up guard, and the first-step limit.
 
 Retreat (the start-up test): along the last direction ``d = d_{0,s-1}``, the loss
 ``φ(a) = L(w_{s-2} - a d)`` has slope ``φ'(0) = -<g_{s-1}, d>`` at the start of the last step
@@ -11,7 +11,7 @@ taken back and redone with that secant step size::
 
 Later, minibatch noise alone makes ``rho < -1`` too often; only bases whose update grows
 with the gradient (SGD) keep a guard, against divergence: when the largest gradient entry
-exceeds ``r > RETREAT_GROWTH`` times the largest seen so far, ``a_new = a_{0,s-1} / (1 + r)``.
+exceeds ``r > RETREAT_BLOWUP`` times the largest seen so far, ``a_new = a_{0,s-1} / (1 + r)``.
 A retreat discards ``g_s`` (it came from a rejected point): neither the base's moments nor the
 levels see it, and the trail is cleared. It costs no extra forward pass, and stops a step size
 that is orders of magnitude too large from wrecking the model in its first steps.
@@ -52,7 +52,7 @@ from .group_state import publish_effective_lr
 
 __all__ = [
     "RETREAT_AGAIN_RATIO",
-    "RETREAT_GROWTH",
+    "RETREAT_BLOWUP",
     "RETREAT_MIN_FACTOR",
     "RETREAT_WINDOW",
     "Decision",
@@ -80,7 +80,7 @@ RETREAT_AGAIN_RATIO = 10.0
 #: On a quadratic the gradient along the sharpest direction grows by ``|1 - a / a*|`` per step,
 #: so the step size is cut to ``a / (1 + r)``. The trail of updates is cleared: it held the
 #: unstable steps.
-RETREAT_GROWTH = 10.0
+RETREAT_BLOWUP = 10.0
 
 
 @dataclass(frozen=True)
@@ -101,34 +101,34 @@ def decide(
     """Skip, retreat (with its factor on ``a_{0,s-1}``) or take the step; one host read.
 
     ``finite``: every measured value is finite; ``prev_dot``: ``<g_s, d_{0,s-1}>`` per unit;
-    ``gmax``: the largest gradient entry when the growth guard runs.
+    ``gmax``: the largest gradient entry when the blow-up guard runs.
     """
     retreat: Tensor | None = None
     secant: Tensor | None = None
     rho: Tensor | None = None
-    growth: Tensor | None = None
+    blowup_ratio: Tensor | None = None
     if startup_test:  # the loss rose along the last step (secant ratio rho)
         prev_slope = ts["prev_slope"].sum()
         rho = prev_dot.sum() / prev_slope
         threshold = torch.where(ts["retreated"].bool(), -RETREAT_AGAIN_RATIO, -1.0)
         retreat = secant = (prev_slope > 0) & (rho < threshold)
-    if gmax is not None:  # any time (SGD): the largest gradient entry grew RETREAT_GROWTH x
-        growth = gmax / ts["peak_gmax"]
-        blowup = (ts["peak_gmax"] > 0) & (growth > RETREAT_GROWTH)
+    if gmax is not None:  # any time (SGD): the largest gradient entry grew RETREAT_BLOWUP x
+        blowup_ratio = gmax / ts["peak_gmax"]
+        blowup = (ts["peak_gmax"] > 0) & (blowup_ratio > RETREAT_BLOWUP)
         retreat = blowup if retreat is None else retreat | blowup
     if retreat is None:
         return Decision(skip=not bool(finite), retreat_factor=None)
     skip_now, retreat_now = torch.stack([~finite, retreat]).tolist()
     if skip_now or not retreat_now:
         return Decision(skip=bool(skip_now), retreat_factor=None)
-    # The secant minimizer along the step, or the growth guard's cut (whichever test fired).
-    if secant is not None and rho is not None and growth is not None:
-        factor = torch.where(secant, 1.0 / (1.0 - rho), 1.0 / (1.0 + growth))
+    # The secant minimizer along the step, or the blow-up guard's cut (whichever test fired).
+    if secant is not None and rho is not None and blowup_ratio is not None:
+        factor = torch.where(secant, 1.0 / (1.0 - rho), 1.0 / (1.0 + blowup_ratio))
     elif rho is not None:
         factor = 1.0 / (1.0 - rho)
     else:
-        assert growth is not None
-        factor = 1.0 / (1.0 + growth)
+        assert blowup_ratio is not None
+        factor = 1.0 / (1.0 + blowup_ratio)
     return Decision(skip=False, retreat_factor=factor)
 
 

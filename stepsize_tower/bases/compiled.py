@@ -207,10 +207,15 @@ def _dot64(x: Tensor, y: Tensor) -> Tensor:
 
 
 def _dot_body(
-    params: list[Tensor], grads: list[Tensor], emas: list[Tensor], weight_decay: float, decoupled: bool, maximize: bool
+    params: list[Tensor],
+    grads: list[Tensor],
+    trails: list[Tensor],
+    weight_decay: float,
+    decoupled: bool,
+    maximize: bool,
 ) -> Tensor:
     total = torch.zeros((), dtype=torch.float64, device=grads[0].device)
-    for p, g, e in zip(params, grads, emas, strict=True):
+    for p, g, e in zip(params, grads, trails, strict=True):
         total = total + _dot64(_loss_grad(p, g, weight_decay, decoupled, maximize).reshape(-1), e.reshape(-1))
     return total
 
@@ -220,7 +225,7 @@ def _update_body(
     grads: list[Tensor],
     exp_avgs: list[Tensor],
     exp_avg_sqs: list[Tensor],
-    emas: list[Tensor],
+    trails: list[Tensor],
     steps: list[Tensor],
     a: Tensor,
     beta1: float,
@@ -232,7 +237,7 @@ def _update_body(
     trail_weight: float,
 ) -> Tensor:
     coefs = _adam_scalars(steps, a, beta1, beta2, weight_decay, decoupled)
-    for i, (p, g, m, v, e) in enumerate(zip(params, grads, exp_avgs, exp_avg_sqs, emas, strict=True)):
+    for i, (p, g, m, v, e) in enumerate(zip(params, grads, exp_avgs, exp_avg_sqs, trails, strict=True)):
         _, w_new, m_new, v_new, e_new = _tensor_step(
             p, g, m, v, e, coefs[i], beta1, beta2, eps, weight_decay, decoupled, maximize, trail_weight
         )
@@ -248,7 +253,7 @@ def _update_body(
 
 def two_pass_dot(
     grads: Sequence[Tensor],
-    emas: Sequence[Tensor],
+    trails: Sequence[Tensor],
     *,
     params: Sequence[Tensor] | None = None,
     weight_decay: float = 0.0,
@@ -261,16 +266,16 @@ def two_pass_dot(
     ``weight_decay != 0``, which needs ``params``). Products are exact (float32 x float32 in
     float64) and accumulated in float64.
     """
-    grads, emas = list(grads), list(emas)
+    grads, trails = list(grads), list(trails)
     if not grads:
         return torch.zeros((), dtype=torch.float64)
     needs_w = weight_decay != 0 and not decoupled
     if needs_w and params is None:
         raise ValueError("L2 weight decay needs params")
     ps = list(params) if needs_w and params is not None else grads  # unused unless needs_w
-    _check(grads, emas, ps)
+    _check(grads, trails, ps)
     return _run(  # type: ignore[no-any-return]
-        "dot", _dot_body, ps, grads, emas, float(weight_decay) if needs_w else 0.0, decoupled, maximize
+        "dot", _dot_body, ps, grads, trails, float(weight_decay) if needs_w else 0.0, decoupled, maximize
     )
 
 
@@ -279,7 +284,7 @@ def adam_trail_update(
     grads: Sequence[Tensor],
     exp_avgs: Sequence[Tensor],
     exp_avg_sqs: Sequence[Tensor],
-    emas: Sequence[Tensor],
+    trails: Sequence[Tensor],
     steps: Sequence[Tensor],
     a: Tensor | float,
     beta1: float,
@@ -302,9 +307,9 @@ def adam_trail_update(
     params = list(params)
     if not params:
         return
-    _check(params, grads, exp_avgs, exp_avg_sqs, emas, steps)
+    _check(params, grads, exp_avgs, exp_avg_sqs, trails, steps)
     hyper = (float(beta1), float(beta2), float(eps), float(weight_decay), bool(decoupled), bool(maximize))
     _run(
-        "update", _update_body, params, list(grads), list(exp_avgs), list(exp_avg_sqs), list(emas), list(steps),
+        "update", _update_body, params, list(grads), list(exp_avgs), list(exp_avg_sqs), list(trails), list(steps),
         _as_step_size(a, params[0]), *hyper, float(trail_weight),
     )  # fmt: skip
