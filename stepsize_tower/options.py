@@ -8,7 +8,7 @@ arguments (:func:`args_doc`). The default of each option is the one in the const
 signature (``args_doc`` reads it there); the measured ones are the constants below.
 
 The measured defaults come from the sensitivity benchmark (``experiments/sensitivity.py``,
-table in the README). Change them only together with a fresh run of it.
+table in experiments/README.md). Change them only together with a fresh run of it.
 """
 
 from __future__ import annotations
@@ -59,7 +59,7 @@ DEFAULT_HORIZON = 0.99
 #: and the GRU language model typed at lr 1 and 10 rescued, nothing lost); limit 2 and the
 #: group's plain root-mean-square (dominated by the GRU's embedding table) did not rescue the
 #: GRU. 0.5 rather than 1: on a small tanh network started at lr 10 or 100 a limit of 1 ended
-#: 10x worse than 0.5 or none (tests/test_safeguards.py). Three seeds: see the README.
+#: 10x worse than 0.5 or none (tests/test_safeguards.py). Three seeds: see experiments/README.md.
 DEFAULT_FIRST_STEP_LIMIT = 0.5
 
 #: The level that learns momentum or betas when asked to (logit space, fixed step size).
@@ -76,7 +76,7 @@ def default_horizon(momentum: float = 0.0) -> float:
 
     A momentum buffer is itself a trail of about ``1 / (1 - μ)`` gradients; stacking a second
     trail on it made the step size shrink (heavy ball, μ = 0.9, on a quadratic and on the
-    digits MLP), while the one-step rule beat the best fixed rate there (see README).
+    digits MLP), while the one-step rule beat the best fixed rate there (see experiments/README.md).
     """
     return 0.0 if momentum > 0 else DEFAULT_HORIZON
 

@@ -67,7 +67,7 @@ RETREAT_MIN_FACTOR = 1e-4
 
 #: Retreats are considered during the first this-many taken steps only: the start-up phase in
 #: which the typed step size is still untested. Later, minibatch noise alone makes consecutive
-#: gradients oppose often enough that the test would cut good step sizes (measured: see README).
+#: gradients oppose often enough that the test would cut good step sizes (measured: see experiments/README.md).
 RETREAT_WINDOW = 10
 
 #: Right after a retreat, the retried step is taken back again only if ``rho < -RETREAT_AGAIN_RATIO``:
