@@ -53,12 +53,12 @@ def step_group(rule: BaseRule, group: dict[str, Any], state: Any, owner: str) ->
         plain_step(rule, group, state, ts, batch, sharded)
         return
     plan = make_plan(group, ts, rule, batch, sharded)
-    m: Measurement | None = measure(rule, group, ts, plan, batch)
+    m = measure(rule, group, ts, plan, batch)
     if sharded:  # partial sums over this rank's parameters: complete them before deciding
-        m = complete_across_ranks(m, group, len(batch.params))  # type: ignore[arg-type]
-        if m is None:
+        completed = complete_across_ranks(m, group, len(batch.params))
+        if completed is None:
             return  # no rank had a gradient in this group
-    assert m is not None
+        m = completed
     update_dot = _update_dot(plan, m)
     finite = _all_finite(m, update_dot)
     decision = decide(ts, finite, m.prev_dot, m.gmax, plan.startup_test)
