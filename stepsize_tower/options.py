@@ -297,7 +297,7 @@ TOWER_OPTIONS: tuple[Option, ...] = (
         legacy=None,
         default_doc="None, off",
     ),
-    Option("maximize", "maximize the objective instead of minimizing it", legacy=False),
+    Option("maximize", "maximize the objective instead of minimizing it", _check_bool("maximize"), legacy=False),
     Option(
         "sharded",
         "the group's parameters are split over the ranks of the default process group "
@@ -317,11 +317,12 @@ SGD_OPTIONS: tuple[Option, ...] = (
     ),
     Option("momentum", "momentum factor μ", _check_momentum),
     Option("dampening", "dampening τ for momentum", _check_dampening),
-    Option("nesterov", "use Nesterov momentum"),
+    Option("nesterov", "use Nesterov momentum", _check_bool("nesterov")),
     Option("weight_decay", "L2 penalty λ, part of the loss", _check_weight_decay),
     Option(
         "learn_momentum",
         "learn μ online as well, in logit space, with the closed-form hypergradient ``-a_0 <g_s, ∂d_{0,s-1}/∂μ>``",
+        _check_bool("learn_momentum"),
         legacy=False,
     ),
     Option("hyper_level", "the :class:`Level` that learns μ", default_doc="Adam-like, lr 0.01"),
@@ -356,6 +357,7 @@ ADAM_OPTIONS: tuple[Option, ...] = (
         "learn_betas",
         "learn β1 and β2 online as well, in logit space, with closed-form hypergradients (see "
         ":class:`~stepsize_tower.bases.adam.AdamRule`); uses the unfused update",
+        _check_bool("learn_betas"),
         legacy=False,
     ),
     Option("hyper_level", "the :class:`Level` that learns the betas", default_doc="Adam-like, lr 0.01"),
