@@ -74,6 +74,14 @@ def test_trial_equals_hand_written_loop(records: dict[str, dict[str, Any]], name
     assert rec["initial_loss"] != train_loss  # it trained
 
 
+@pytest.mark.parametrize("name", ["sgd-momentum", "tower-adam"])
+def test_initial_losses_are_the_fresh_models(records: dict[str, dict[str, Any]], name: str) -> None:
+    fresh = get_task("logreg_cancer").build(SEED)  # the seed's model before any step
+    expected = {"train_loss": fresh.full_train_loss(fresh.model), "test_loss": fresh.test_loss(fresh.model)}
+    assert records[name]["initial_metrics"] == expected
+    assert records[name]["initial_loss"] == expected["train_loss"]
+
+
 def test_schedule_is_logged_as_level0(records: dict[str, dict[str, Any]]) -> None:
     traj = records["adam-cosine"]["trajectory"]
     assert traj[0]["step_sizes"] == [[LR]]

@@ -52,7 +52,7 @@ TOTAL = 2 * 1 * 3
 BROKEN_SEED = 2
 
 # What differs between two runs of the same trial: clocks, the worker's pid and the folder.
-VOLATILE = {"wall_seconds", "train_seconds", "finished_at", "pid", "log_dir"}
+VOLATILE = {"setup_seconds", "wall_seconds", "train_seconds", "finished_at", "pid", "log_dir"}
 
 
 def _records(out: Path) -> list[dict[str, Any]]:

@@ -104,7 +104,7 @@ def test_good_recipe_defaults_and_overrides() -> None:
     r = loaded.recipe
     assert r.sweep.seeds == [0, 1]
     assert r.sweep.lrs() == [1e-3]  # "1e-3" is a string in YAML 1.1: accepted for a number field
-    assert r.tolerance.ratio == 1.25 and r.resources.threads == 1
+    assert r.tolerance.rule().kind == "gap" and r.tolerance.rule().gap == 0.05 and r.resources.threads == 1
     trials = expand_trials(r)
     assert len(trials) == (2 + 1) * 1 * 2
     assert len({t.trial_id for t in trials}) == len(trials)

@@ -17,6 +17,7 @@ import pytest
 
 from stepsize_tower.runner import ResultStore, expand_trials, load_recipe
 from stepsize_tower.runner.cli import main
+from stepsize_tower.tasks import get_task
 
 RECIPE = """\
 name: tiny_sweep
@@ -99,23 +100,27 @@ def test_report_files(sweep: dict[str, Any]) -> None:
     assert "Band" in md and "good lrs" in md
     page = (report / "report.html").read_text()
     assert page.count("data:image/png;base64,") == 3  # self-contained
-    # the band counts follow the rule on the stored results
+    # the band counts follow the default rule (normalized gap 0.05) on the stored results, with
+    # L_init the seed's fresh model's training loss, evaluated here
     rows = [r for r in ResultStore(out).records() if r["trial"]["optimizer"] == "sgd"]
     best = {
         s: min(r["metrics"]["train_loss"] for r in rows if r["trial"]["seed"] == s and r["metrics"]["train_loss"])
         for s in (0, 1)
     }
+    fresh = {s: get_task("logreg_cancer").build(s) for s in (0, 1)}
+    limit = {s: best[s] + 0.05 * (fresh[s].full_train_loss(fresh[s].model) - best[s]) for s in (0, 1)}
     good = {
         lr
         for lr in (0.001, 0.1, 10.0)
         if all(
             (v := next(r for r in rows if r["trial"]["lr"] == lr and r["trial"]["seed"] == s)["metrics"]["train_loss"])
             is not None
-            and v <= max(1.25 * best[s], best[s] + 0.01)
+            and v <= limit[s]
             for s in (0, 1)
         )
     }
     assert f"| sgd | — | {len(good)}/3 |" in md
+    assert "L ≤ L_best + 0.05 × (L_init − L_best)" in md
 
 
 def test_event_files(sweep: dict[str, Any]) -> None:

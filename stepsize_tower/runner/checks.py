@@ -172,17 +172,35 @@ def _check_rest(loaded: LoadedRecipe) -> None:
     err = loaded.error
     if not r.name.strip() or any(c in r.name for c in "/\\"):
         raise err(("name",), f"expected a non-empty name without slashes, got {r.name!r}")
-    tol = r.tolerance
-    if not tol.ratio >= 1:
-        raise err(("tolerance", "ratio"), f"expected a ratio >= 1, got {tol.ratio}")
-    if tol.slack < 0:
-        raise err(("tolerance", "slack"), f"expected a slack >= 0, got {tol.slack}")
+    _check_tolerance(loaded)
     res = r.resources
     if res.workers is not None and res.workers < 1:
         raise err(("resources", "workers"), f"expected at least 1 worker, got {res.workers}")
     if res.threads < 1 or res.log_every < 1:
         raise err(("resources",), "threads and log_every must be >= 1")
     _check_executor(loaded)
+
+
+def _check_tolerance(loaded: LoadedRecipe) -> None:
+    tol = loaded.recipe.tolerance
+    err = loaded.error
+    if tol.gap is not None:
+        for key in ("ratio", "slack"):
+            if getattr(tol, key) is not None:
+                raise err(
+                    ("tolerance", key),
+                    f"'{key}' belongs to the ratio band and 'gap' to the normalized-gap rule; give one rule: "
+                    f"{{gap: {tol.gap:g}}} or {{ratio: 1.25, slack: 0.01}}, not both",
+                )
+        if not 0 <= tol.gap <= 1:
+            raise err(
+                ("tolerance", "gap"),
+                f"expected a gap in [0, 1] (the share of the way from the initial loss to the best), got {tol.gap}",
+            )
+    if tol.ratio is not None and not tol.ratio >= 1:
+        raise err(("tolerance", "ratio"), f"expected a ratio >= 1, got {tol.ratio}")
+    if tol.slack is not None and tol.slack < 0:
+        raise err(("tolerance", "slack"), f"expected a slack >= 0, got {tol.slack}")
 
 
 def _check_executor(loaded: LoadedRecipe) -> None:

@@ -19,6 +19,7 @@ from typing import Any
 import torch
 from torch.optim import Optimizer
 
+from ..tasks.base import TaskInstance
 from ..tasks.train import train
 from ..tower import TowerOptimizer
 from .build import build_optimizer, build_schedule, build_task, resolve_steps
@@ -129,7 +130,17 @@ def _hparams(trial: Trial) -> dict[str, Any]:
     return h
 
 
-def _train(job: TrialJob, record: Record) -> None:
+#: The clock of ``setup_seconds`` and ``wall_seconds`` (a seam for tests).
+_clock = time.perf_counter
+
+
+def _initial_test_loss(task: TaskInstance) -> float:
+    """The held-out loss of the fresh model, leaving the global RNG as it was (the run stays bitwise the same)."""
+    with torch.random.fork_rng(devices=[]):
+        return float(task.test_loss(task.model))
+
+
+def _train(job: TrialJob, record: Record, start: float) -> None:
     trial = job.trial
     torch.manual_seed(trial.seed)
     task = build_task(job.task, trial.seed, job.search_path)
@@ -140,6 +151,7 @@ def _train(job: TrialJob, record: Record) -> None:
     sizes = current_step_sizes(optimizer)
     log.layout(len(sizes[0]), len(sizes))
     log.step_sizes(0)
+    initial_test = _initial_test_loss(task)
     evaluate_every = job.task.eval_every
 
     def on_step(step: int, loss: float) -> None:
@@ -148,6 +160,7 @@ def _train(job: TrialJob, record: Record) -> None:
             log.scalar("loss/train", task.full_train_loss(task.model), step)
             log.scalar("loss/test", task.test_loss(task.model), step)
 
+    record["setup_seconds"] = _clock() - start
     result = train(task, optimizer, steps, scheduler=schedule, on_step=on_step)
     if result.steps % job.log_every:
         log.step_sizes(result.steps)
@@ -159,6 +172,7 @@ def _train(job: TrialJob, record: Record) -> None:
         if name not in metrics:
             metrics[name] = None if result.diverged else _finite(float(task.metrics[name](task.model)))
     log.scalar("loss/train", result.initial_loss, 0)
+    log.scalar("loss/test", initial_test, 0)
     for name, value in metrics.items():
         tag = f"loss/{name.removesuffix('_loss')}" if name.endswith("_loss") else f"metrics/{name}"
         if value is not None:
@@ -168,6 +182,7 @@ def _train(job: TrialJob, record: Record) -> None:
         steps=steps,
         steps_done=result.steps,
         initial_loss=_finite(result.initial_loss),
+        initial_metrics={"train_loss": _finite(result.initial_loss), "test_loss": _finite(initial_test)},
         metrics=metrics,
         diverged=result.diverged,
         train_seconds=result.seconds,
@@ -187,14 +202,23 @@ def run_trial(job: TrialJob) -> Record:
 
     The record holds ``trial_id``, ``status`` (``ok`` or ``failed``), ``trial`` (the resolved
     grid point), ``task`` (the task section), ``metrics`` (``train_loss``, ``test_loss`` and
-    the recipe's extra metrics; ``None`` when not finite), ``initial_loss``, ``diverged``,
-    ``steps``, ``steps_done``, ``final_step_sizes`` and ``trajectory`` (step sizes every
-    ``log_every`` steps, per group, level 0 first), ``retreats``, ``skipped_steps``,
-    ``train_seconds``, ``wall_seconds``, ``error`` (the traceback of a failed trial) and
-    ``log_dir``.
+    the recipe's extra metrics; ``None`` when not finite), ``initial_metrics``
+    (``train_loss`` and ``test_loss`` of the seed's model before the first step, the
+    ``L_init`` of the normalized-gap rule), ``initial_loss`` (the same training loss),
+    ``diverged``, ``steps``, ``steps_done``, ``final_step_sizes`` and ``trajectory`` (step
+    sizes every ``log_every`` steps, per group, level 0 first), ``retreats``,
+    ``skipped_steps``, ``error`` (the traceback of a failed trial), ``log_dir`` and three
+    times in seconds:
+
+    - ``setup_seconds``: building the task, optimizer, schedule and logger and the initial
+      held-out loss; a worker's first trial pays its imports and data loading here
+      (``None`` when the trial failed before training);
+    - ``wall_seconds``: the trial's own run, from the end of setup to the finished record
+      (training, final evaluation, logging); the whole time when setup failed;
+    - ``train_seconds``: the training steps alone.
     """
     torch.set_num_threads(job.threads)
-    start = time.perf_counter()
+    start = _clock()
     record: Record = {
         "trial_id": job.trial.trial_id,
         "status": "ok",
@@ -204,12 +228,14 @@ def run_trial(job: TrialJob) -> Record:
         "error": None,
         "pid": os.getpid(),
     }
+    record["setup_seconds"] = None
     try:
-        _train(job, record)
+        _train(job, record, start)
     except Exception:
         record["status"] = "failed"
         record["error"] = traceback.format_exc()
-    record["wall_seconds"] = time.perf_counter() - start
+    setup = record["setup_seconds"]
+    record["wall_seconds"] = _clock() - start - (setup or 0.0)
     record["finished_at"] = time.time()
     return record
 
@@ -225,6 +251,7 @@ def lost_record(job: TrialJob, reason: str, exc: BaseException) -> Record:
         "status": "failed",
         "trial": job.trial.config(),
         "error": f"{reason}: {type(exc).__name__}: {exc}",
+        "setup_seconds": None,
         "wall_seconds": None,
         "finished_at": time.time(),
     }

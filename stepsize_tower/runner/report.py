@@ -1,9 +1,11 @@
 """The sweep report: Markdown and a self-contained HTML page with PNG plots.
 
 Sections: the band table (per configuration, how many initial step sizes end within the
-recipe's tolerance of the best fixed-rate result), the final metric by initial step size,
-the plots (final metric vs initial step size with seed spread, learned step-size
-trajectories per level, wall time per trial) and the failed trials.
+recipe's tolerance of the best fixed-rate result, the good ones as runs of grid neighbours,
+and the count under the same rule on the other loss: held-out beside training), the final
+metric and the other loss by initial step size, the plots (final metric vs initial step size
+with seed spread, learned step-size trajectories per level, wall time per trial) and the
+failed trials.
 """
 
 from __future__ import annotations
@@ -13,16 +15,18 @@ import html
 import math
 import statistics
 from collections import defaultdict
-from collections.abc import Sequence
+from collections.abc import Collection, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
+from .report_plots import write_plots
 from .schema import load_recipe
 from .store import ResultStore
+from .tolerance import GoodRule
 from .trials import Trial, expand_trials
 
-__all__ = ["REPORT_FOLDER", "Series", "collect", "write_report"]
+__all__ = ["REPORT_FOLDER", "Judge", "Series", "collect", "lr_runs", "write_report"]
 
 REPORT_FOLDER = "report"
 Record = dict[str, Any]
@@ -83,87 +87,147 @@ def _fmt(x: float | None, digits: int = 3) -> str:
     return f"{x:.{digits}g}"
 
 
-def _best_fixed(series: Sequence[Series], metric: str) -> dict[tuple[str, int], float]:
-    """Best fixed-rate value per (swept options, seed); every configuration when none is fixed."""
-    pool = [s for s in series if s.kind == "fixed"] or list(series)
-    best: dict[tuple[str, int], float] = {}
-    for s in pool:
-        for seed, row in s.by_seed(metric).items():
-            for v in row.values():
-                if math.isfinite(v):
-                    best[(s.swept, seed)] = min(best.get((s.swept, seed), math.inf), v)
-    return best
+def lr_runs(lrs: Sequence[float], good: Collection[float]) -> str:
+    """The good step sizes as runs of grid neighbours, such as ``1e-06 … 0.001, 0.1`` (``—``: none).
+
+    Runs follow the sorted grid ``lrs``: a bad step size between two good ones splits them.
+    """
+    runs: list[list[float]] = []
+    previous = False
+    for lr in sorted(lrs):
+        now = lr in good
+        if now and previous:
+            runs[-1].append(lr)
+        elif now:
+            runs.append([lr])
+        previous = now
+    return ", ".join(f"{r[0]:.3g}" if len(r) == 1 else f"{r[0]:.3g} … {r[-1]:.3g}" for r in runs) or "—"
 
 
-def _good(value: float, best: float, ratio: float, slack: float) -> bool:
-    return math.isfinite(value) and math.isfinite(best) and value <= max(ratio * best, best + slack)
+def _initial(record: Record, metric: str) -> float | None:
+    """``L_init``: the record's ``metric`` before the first step (older records hold only the training loss)."""
+    value = (record.get("initial_metrics") or {}).get(metric)
+    if value is None and metric == "train_loss":
+        value = record.get("initial_loss")
+    return None if value is None else float(value)
+
+
+@dataclass
+class Judge:
+    """The recipe's rule on one metric, with the baseline of every (swept options, seed).
+
+    ``baselines[(swept, seed)] = (L_best, L_init)``: the best fixed-rate final value (every
+    configuration's when none is fixed) and the initial value recorded by that best trial.
+    """
+
+    rule: GoodRule
+    metric: str
+    baselines: dict[tuple[str, int], tuple[float, float | None]]
+
+    @classmethod
+    def of(cls, rule: GoodRule, metric: str, series: Sequence[Series]) -> Judge:
+        """Find the baselines of ``metric`` in ``series``."""
+        pool = [s for s in series if s.kind == "fixed"] or list(series)
+        best: dict[tuple[str, int], tuple[float, float | None]] = {}
+        for s in pool:
+            for r in s.records:
+                value = r["metrics"].get(metric)
+                key = (s.swept, r["trial"]["seed"])
+                if value is not None and math.isfinite(value) and value < best.get(key, (math.inf, None))[0]:
+                    best[key] = (float(value), _initial(r, metric))
+        return cls(rule, metric, best)
+
+    def good(self, s: Series) -> dict[int, set[float]]:
+        """``{seed: good step sizes}`` of series ``s``."""
+        out: dict[int, set[float]] = {}
+        for seed, row in s.by_seed(self.metric).items():
+            best, initial = self.baselines.get((s.swept, seed), (math.nan, None))
+            out[seed] = {lr for lr, v in row.items() if self.rule.good(v, best, initial)}
+        return out
+
+    def everywhere(self, s: Series, lrs: Sequence[float]) -> list[float]:
+        """The step sizes of ``lrs`` that ran and are good in every seed."""
+        good = self.good(s)
+        ran = {r["trial"]["lr"] for r in s.records}
+        return [lr for lr in lrs if lr in ran and all(lr in g for g in good.values())]
+
+    def unjudged(self) -> bool:
+        """Whether the gap rule lacks an initial value for some baseline (records from before it was kept)."""
+        return self.rule.kind == "gap" and any(init is None for _, init in self.baselines.values())
+
+
+def _other_loss(metric: str) -> str:
+    return "test_loss" if metric == "train_loss" else "train_loss"
 
 
 @dataclass
 class _Tables:
     band: list[list[str]]
     grid: list[list[str]]
+    held_out: list[list[str]]
     best: list[list[str]]
     failed: list[list[str]]
 
 
-def _tables(recipe: Any, series: Sequence[Series], failed: Sequence[Record]) -> _Tables:
-    tol = recipe.tolerance
-    metric = tol.metric
-    lrs = recipe.sweep.lrs()
-    best = _best_fixed(series, metric)
-    extra = [m for m in ("train_loss", "test_loss", *recipe.task.metrics) if m != metric]
-    band = [
-        ["configuration", "options", "good lrs (every seed)", "per seed", "good range", "diverged", "wall s (median)"]
+def _band_row(s: Series, lrs: Sequence[float], judge: Judge, other: Judge) -> list[str]:
+    good = judge.good(s)
+    everywhere = judge.everywhere(s, lrs)
+    walls = [r["wall_seconds"] for r in s.records if r.get("wall_seconds") is not None]
+    return [
+        s.label,
+        s.swept or "—",
+        f"{len(everywhere)}/{len(lrs)}",
+        " / ".join(str(len(good[seed])) for seed in sorted(good)),
+        lr_runs(lrs, everywhere),
+        f"{len(other.everywhere(s, lrs))}/{len(lrs)}",
+        str(sum(1 for r in s.records if r.get("diverged"))),
+        _fmt(statistics.median(walls) if walls else None, 2),
     ]
+
+
+def _grid_row(s: Series, lrs: Sequence[float], judge: Judge) -> list[str]:
+    rows = s.by_seed(judge.metric)
+    everywhere = set(judge.everywhere(s, lrs))
+    cells = []
+    for lr in lrs:
+        vals = [row[lr] for row in rows.values() if lr in row]
+        med = statistics.median_high([_nan_last(v) for v in vals]) if vals else math.nan
+        cells.append(("**" + _fmt(med) + "**") if lr in everywhere else _fmt(med))
+    return [s.label, s.swept or "—", *cells]
+
+
+def _best_row(s: Series, lrs: Sequence[float], metric: str, extra: Sequence[str]) -> list[str]:
+    rows = s.by_seed(metric)
+    medians = {
+        lr: statistics.median_high([_nan_last(row[lr]) for row in rows.values() if lr in row])
+        for lr in lrs
+        if any(lr in row for row in rows.values())
+    }
+    lr_star = min(medians, key=lambda k: medians[k])
+    at = [r for r in s.records if r["trial"]["lr"] == lr_star]
+    others = []
+    for m in extra:
+        fin = [v for v in (r["metrics"].get(m) for r in at) if v is not None]
+        others.append(_fmt(statistics.median(fin)) if fin else "—")
+    return [s.label, s.swept or "—", f"{lr_star:.3g}", _fmt(medians[lr_star]), *others]
+
+
+def _tables(recipe: Any, series: Sequence[Series], failed: Sequence[Record]) -> _Tables:
+    metric = recipe.tolerance.metric
+    rule = recipe.tolerance.rule()
+    lrs = recipe.sweep.lrs()
+    judge, other = Judge.of(rule, metric, series), Judge.of(rule, _other_loss(metric), series)
+    extra = [m for m in ("train_loss", "test_loss", *recipe.task.metrics) if m != metric]
+    head = ["configuration", "options", "good lrs (every seed)", "per seed", "good lrs (runs)"]
+    band = [[*head, f"good by {other.metric}", "diverged", "wall s (median)"]]
     grid = [["configuration", "options", *[f"{lr:.3g}" for lr in lrs]]]
+    held_out = [list(grid[0])]
     best_rows = [["configuration", "options", "best lr", metric, *extra]]
     for s in series:
-        rows = s.by_seed(metric)
-        seeds = sorted(rows)
-        good = {
-            seed: {
-                lr
-                for lr, v in rows[seed].items()
-                if _good(v, best.get((s.swept, seed), math.nan), tol.ratio, tol.slack)
-            }
-            for seed in seeds
-        }
-        everywhere = [lr for lr in lrs if all(lr in good[seed] for seed in seeds) and any(lr in rows[x] for x in seeds)]
-        span = f"{min(everywhere):.3g} … {max(everywhere):.3g}" if everywhere else "—"
-        diverged = sum(1 for r in s.records if r.get("diverged"))
-        walls = [r["wall_seconds"] for r in s.records if r.get("wall_seconds") is not None]
-        band.append(
-            [
-                s.label,
-                s.swept or "—",
-                f"{len(everywhere)}/{len(lrs)}",
-                " / ".join(str(len(good[seed])) for seed in seeds),
-                span,
-                str(diverged),
-                _fmt(statistics.median(walls) if walls else None, 2),
-            ]
-        )
-        cells = []
-        for lr in lrs:
-            vals = [rows[seed][lr] for seed in seeds if lr in rows[seed]]
-            med = statistics.median_high([_nan_last(v) for v in vals]) if vals else math.nan
-            mark = all(lr in good[seed] for seed in seeds) and bool(vals)
-            cells.append(("**" + _fmt(med) + "**") if mark else _fmt(med))
-        grid.append([s.label, s.swept or "—", *cells])
-        medians = {
-            lr: statistics.median_high([_nan_last(rows[x][lr]) for x in seeds if lr in rows[x]])
-            for lr in lrs
-            if any(lr in rows[x] for x in seeds)
-        }
-        lr_star = min(medians, key=lambda k: medians[k])
-        at = [r for r in s.records if r["trial"]["lr"] == lr_star]
-        others = []
-        for m in extra:
-            vs = [r["metrics"].get(m) for r in at]
-            fin = [v for v in vs if v is not None]
-            others.append(_fmt(statistics.median(fin)) if fin else "—")
-        best_rows.append([s.label, s.swept or "—", f"{lr_star:.3g}", _fmt(medians[lr_star]), *others])
+        band.append(_band_row(s, lrs, judge, other))
+        grid.append(_grid_row(s, lrs, judge))
+        held_out.append(_grid_row(s, lrs, other))
+        best_rows.append(_best_row(s, lrs, metric, extra))
     fail_rows = [["trial", "configuration", "lr", "seed", "error (last line)"]]
     for r in failed:
         t = r.get("trial", {})
@@ -171,105 +235,7 @@ def _tables(recipe: Any, series: Sequence[Series], failed: Sequence[Record]) -> 
         fail_rows.append(
             [r["trial_id"], str(t.get("optimizer")), f"{t.get('lr', math.nan):.3g}", str(t.get("seed")), last[0][:200]]
         )
-    return _Tables(band, grid, best_rows, fail_rows)
-
-
-# ---------------------------------------------------------------------------- plots
-
-
-def _plots(recipe: Any, series: Sequence[Series], out: Path) -> list[tuple[str, str]]:
-    """Write the PNG plots into ``out``; returns ``(file name, caption)`` pairs."""
-    import matplotlib
-
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
-
-    metric = recipe.tolerance.metric
-    tol = recipe.tolerance
-    files: list[tuple[str, str]] = []
-    colors = plt.rcParams["axes.prop_cycle"].by_key()["color"]
-    sweeps = list(dict.fromkeys(s.swept for s in series))
-    best = _best_fixed(series, metric)
-
-    # 1. final metric vs initial lr, median and seed spread
-    fig, axes = plt.subplots(1, len(sweeps), figsize=(6.0 * len(sweeps), 4.2), squeeze=False)
-    for ax, swept in zip(axes[0], sweeps, strict=True):
-        for i, s in enumerate(x for x in series if x.swept == swept):
-            rows = s.by_seed(metric)
-            lrs = sorted({lr for row in rows.values() for lr in row})
-            vals = [[rows[seed].get(lr, math.nan) for seed in rows] for lr in lrs]
-            fin = [[v for v in vs if math.isfinite(v)] for vs in vals]
-            med = [statistics.median(v) if v else math.nan for v in fin]
-            style = "--" if s.kind == "fixed" else "-"
-            c = colors[i % len(colors)]
-            ax.plot(lrs, med, style, marker="o", color=c, label=s.label)
-            lo = [min(v) if v else math.nan for v in fin]
-            hi = [max(v) if v else math.nan for v in fin]
-            ax.fill_between(lrs, lo, hi, color=c, alpha=0.15)
-        bests = [v for (sw, _), v in best.items() if sw == swept]
-        if bests:
-            b = statistics.median(bests)
-            ax.axhline(max(tol.ratio * b, b + tol.slack), color="gray", lw=0.8, ls=":", label="tolerance band")
-        ax.set_xscale("log")
-        ax.set_yscale("log")
-        ax.set_xlabel("initial step size")
-        ax.set_ylabel(f"final {metric}")
-        ax.set_title(swept or recipe.name)
-        ax.legend(fontsize=8)
-    fig.tight_layout()
-    fig.savefig(out / "final_vs_lr.png", dpi=110)
-    plt.close(fig)
-    files.append(("final_vs_lr.png", f"Final {metric} vs initial step size: median over seeds, band = min…max."))
-
-    # 2. learned step sizes per level (first seed; one line per initial lr)
-    towers = [s for s in series if s.kind == "tower" and s.depth > 0][:8]
-    if towers:
-        cols = max(s.depth for s in towers) + 1
-        fig, axes = plt.subplots(len(towers), cols, figsize=(3.6 * cols, 2.8 * len(towers)), squeeze=False)
-        cmap = plt.get_cmap("viridis")
-        for row, s in enumerate(towers):
-            seed = min(r["trial"]["seed"] for r in s.records)
-            recs = sorted((r for r in s.records if r["trial"]["seed"] == seed), key=lambda r: r["trial"]["lr"])
-            for j, r in enumerate(recs):
-                traj = r.get("trajectory") or []
-                steps = [p["step"] for p in traj]
-                for k in range(s.depth + 1):
-                    ys = [p["step_sizes"][0][k] for p in traj]
-                    ax = axes[row][k]
-                    ax.plot(
-                        steps,
-                        ys,
-                        color=cmap(j / max(len(recs) - 1, 1)),
-                        lw=1,
-                        label=f"lr {r['trial']['lr']:.3g}" if k == 0 else None,
-                    )
-            for k in range(cols):
-                ax = axes[row][k]
-                if k > s.depth:
-                    ax.axis("off")
-                    continue
-                ax.set_yscale("log")
-                ax.set_title(f"{s.label} {s.swept} · level {k}".strip(), fontsize=9)
-                ax.set_xlabel("step")
-            axes[row][0].legend(fontsize=6)
-        fig.tight_layout()
-        fig.savefig(out / "step_sizes.png", dpi=100)
-        plt.close(fig)
-        files.append(
-            ("step_sizes.png", "Learned step size a_k per level (group 0, first seed), one line per initial lr.")
-        )
-
-    # 3. wall time per trial
-    fig, ax = plt.subplots(figsize=(max(4.0, 1.2 * len(series)), 3.4))
-    data = [[r["wall_seconds"] for r in s.records if r.get("wall_seconds") is not None] for s in series]
-    ax.boxplot(data, showfliers=True)
-    ax.set_xticks(range(1, len(series) + 1), [f"{s.label}\n{s.swept}".strip() for s in series], fontsize=8)
-    ax.set_ylabel("wall seconds per trial")
-    fig.tight_layout()
-    fig.savefig(out / "wall_time.png", dpi=100)
-    plt.close(fig)
-    files.append(("wall_time.png", "Wall time per trial (build, train, evaluate, log)."))
-    return files
+    return _Tables(band, grid, held_out, best_rows, fail_rows)
 
 
 # ---------------------------------------------------------------------------- rendering
@@ -303,20 +269,33 @@ _CSS = (
 )
 
 
+def _intro(recipe: Any, trials: Sequence[Trial], series: Sequence[Series], failed: Sequence[Record]) -> str:
+    """The report's first paragraph: progress, the task, the rule with its numbers."""
+    tol = recipe.tolerance
+    done = sum(len(s.records) for s in series)
+    text = (
+        f"{done} of {len(trials)} trials finished, {len(failed)} failed. Task: "
+        + ", ".join(f"{k}={v}" for k, v in vars(recipe.task).items() if v not in (None, {}, [], ""))
+        + ". "
+        + tol.rule().describe(tol.metric)
+        + f" The same rule on {_other_loss(tol.metric)} (its own best and initial value) is shown beside it."
+    )
+    if series and Judge.of(tol.rule(), tol.metric, series).unjudged():
+        text += (
+            f" Some baselines have no initial {tol.metric} recorded (results written before it was kept): "
+            "their seeds count nothing as good under the gap rule; run the sweep into a new folder to record it."
+        )
+    return text
+
+
 def write_report(folder: str | Path) -> list[Path]:
     """Write ``report.md``, ``report.html`` and the plots into ``folder/report``; returns the paths."""
     folder = Path(folder)
     recipe, trials, series, failed = collect(folder)
     out = folder / REPORT_FOLDER
     out.mkdir(parents=True, exist_ok=True)
-    done = sum(len(s.records) for s in series)
     tol = recipe.tolerance
-    intro = (
-        f"{done} of {len(trials)} trials finished, {len(failed)} failed. Task: "
-        + ", ".join(f"{k}={v}" for k, v in vars(recipe.task).items() if v not in (None, {}, [], ""))
-        + f". A result is good when its final {tol.metric} ≤ max({tol.ratio} × best, best + {tol.slack}), "
-        "best being the best fixed-rate result of the same seed."
-    )
+    intro = _intro(recipe, trials, series, failed)
     if not series:
         (out / "report.md").write_text(f"# {recipe.name}\n\n{intro}\n\nNo finished trials yet.\n")
         (out / "report.html").write_text(
@@ -326,10 +305,13 @@ def write_report(folder: str | Path) -> list[Path]:
         )
         return [out / "report.md", out / "report.html"]
     tables = _tables(recipe, series, failed)
-    plots = _plots(recipe, series, out)
+    plots = write_plots(recipe, series, Judge.of(tol.rule(), tol.metric, series), out)
+    other = _other_loss(tol.metric)
+    bold = f"bold: good for every seed under {tol.rule().formula()}"
     sections: list[tuple[str, str, list[list[str]] | None]] = [
-        ("Band: initial step sizes within tolerance of the best fixed rate", "", tables.band),
-        (f"Final {tol.metric} by initial step size (median over seeds; bold: good for every seed)", "", tables.grid),
+        (f"Band: initial step sizes within tolerance of the best fixed rate ({tol.rule().formula()})", "", tables.band),
+        (f"Final {tol.metric} by initial step size (median over seeds; {bold})", "", tables.grid),
+        (f"Final {other} by initial step size (median over seeds; {bold} on {other})", "", tables.held_out),
         ("Each configuration at its best initial step size (median over seeds)", "", tables.best),
     ]
     if failed:

@@ -9,7 +9,7 @@ A recipe is a YAML mapping with the sections below (every key optional except ``
       - {name: tower-adam, kind: tower, base: adam}
       - {name: adam, kind: fixed, base: Adam}
     sweep: {lr: {low: 1.0e-5, high: 1.0, points: 6}, depths: [1], seeds: [0, 1]}
-    tolerance: {metric: train_loss, ratio: 1.25, slack: 0.01}
+    tolerance: {metric: train_loss, gap: 0.05}      # or {ratio: 1.25, slack: 0.01}
     resources: {workers: 2, threads: 1, log_every: 10}   # executor: dask, address: tcp://host:8786
 
 :func:`load_recipe` parses the file, applies ``--set key=value`` overrides and converts the
@@ -32,6 +32,7 @@ from typing import Any, Literal, Union
 import yaml
 
 from .errors import RecipeError
+from .tolerance import DEFAULT_GAP, DEFAULT_RATIO, DEFAULT_SLACK, GoodRule
 
 __all__ = [
     "ExecutorName",
@@ -177,14 +178,38 @@ class SweepConfig:
 
 @dataclass
 class ToleranceConfig:
-    """The band rule: a final ``metric`` is good when ``≤ max(ratio × best, best + slack)``.
+    """When a final ``metric`` counts as good; give the keys of one rule (see :mod:`.tolerance`).
 
-    ``best`` is the best fixed-rate result of the same seed (and option values).
+    - ``gap`` (the default, 0.05): good when ``L ≤ L_best + gap × (L_init − L_best)``;
+    - ``ratio`` and/or ``slack`` (defaults 1.25 and 0.01): good when
+      ``L ≤ max(ratio × L_best, L_best + slack)``.
+
+    ``L_best`` is the best fixed-rate final ``metric`` of the same seed (and option values);
+    ``L_init`` is that seed's ``metric`` before the first step. Giving ``gap`` together with
+    ``ratio`` or ``slack`` is an error.
     """
 
     metric: Literal["train_loss", "test_loss"] = "train_loss"
-    ratio: float = 1.25
-    slack: float = 0.01
+    gap: float | None = None
+    ratio: float | None = None
+    slack: float | None = None
+
+    def rule(self) -> GoodRule:
+        """The rule these keys select, defaults filled in (the ratio band when ``ratio`` or ``slack`` is given)."""
+        if self.gap is None and (self.ratio is not None or self.slack is not None):
+            return GoodRule(
+                "ratio",
+                ratio=DEFAULT_RATIO if self.ratio is None else self.ratio,
+                slack=DEFAULT_SLACK if self.slack is None else self.slack,
+            )
+        return GoodRule("gap", gap=DEFAULT_GAP if self.gap is None else self.gap)
+
+    def resolved(self) -> ToleranceConfig:
+        """The same rule with its numbers written out (the other rule's keys left null)."""
+        rule = self.rule()
+        if rule.kind == "ratio":
+            return ToleranceConfig(self.metric, ratio=rule.ratio, slack=rule.slack)
+        return ToleranceConfig(self.metric, gap=rule.gap)
 
 
 #: The executors a recipe can name in ``resources.executor`` (see :mod:`stepsize_tower.runner.executors`).
@@ -502,7 +527,11 @@ def apply_override(data: dict[str, Any], item: str) -> None:
 
 
 def recipe_to_dict(recipe: Recipe) -> dict[str, Any]:
-    """The resolved recipe as plain data: every default filled in, the step sizes as a list."""
+    """The resolved recipe as plain data: every default filled in, the step sizes as a list.
+
+    The tolerance keeps the keys of its one rule, numbers filled in, the other rule's keys null.
+    """
     data = dataclasses.asdict(recipe)
     data["sweep"]["lr"] = recipe.sweep.lrs()
+    data["tolerance"] = dataclasses.asdict(recipe.tolerance.resolved())
     return data
