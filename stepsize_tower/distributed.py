@@ -101,7 +101,7 @@ def shard_group(params: list[Tensor]) -> Any:
         mesh, placements = p.device_mesh, p.placements  # type: ignore[attr-defined]
         if mesh.ndim == 1:
             return mesh.get_group()
-        shard_dims = [i for i, pl in enumerate(placements) if pl.isshard()]
+        shard_dims = [i for i, pl in enumerate(placements) if pl.is_shard()]
         if len(shard_dims) != 1 or not all(pl.is_replicate() for i, pl in enumerate(placements) if i != shard_dims[0]):
             raise RuntimeError(
                 f"sharded=True supports DTensor parameters sharded along one mesh dimension (FSDP2, "
