@@ -70,10 +70,10 @@ class BackwardDot:
             self.seen[p] = (p.grad, p.grad._version, torch.dot(p.grad.reshape(-1), trail.reshape(-1)))
 
     def _trail_dot(
-        self, group: dict[str, Any], params: list[Tensor], grads: list[Tensor], states: list[dict[str, Any]]
+        self, group: dict[str, Any], params: list[Tensor], grads: list[Tensor], trails: list[Tensor]
     ) -> Tensor | None:
         hooked = self._sum(params, grads)
-        return hooked if hooked is not None else self._own(group, params, grads, states)
+        return hooked if hooked is not None else self._own(group, params, grads, trails)
 
     def _sum(self, params: list[Tensor], grads: list[Tensor]) -> Tensor | None:
         dots = []

@@ -69,7 +69,8 @@ import torch
 from torch import Tensor, nn
 
 import stepsize_tower
-from stepsize_tower import DEFAULT_DEPTH, TowerAdam, TowerAdamW, TowerSGD, _compiled
+from stepsize_tower import DEFAULT_DEPTH, TowerAdam, TowerAdamW, TowerSGD
+from stepsize_tower.bases import compiled as _compiled
 
 ADAM_LR = 1e-3
 MIN_REPEATS = 5

@@ -9,9 +9,9 @@ plain fixed-rate optimizer.
 """
 
 from .adam import TowerAdam, TowerAdamW
-from .defaults import DEFAULT_DEPTH, default_levels
 from .factory import make_tower
 from .levels import Level
+from .options import DEFAULT_DEPTH, default_levels
 from .sgd import TowerSGD
 from .tower import TowerOptimizer
 

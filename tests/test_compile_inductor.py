@@ -16,7 +16,8 @@ import pytest
 import torch
 from torch import nn
 
-from stepsize_tower import TowerAdam, TowerAdamW, TowerSGD, _compiled
+from stepsize_tower import TowerAdam, TowerAdamW, TowerSGD
+from stepsize_tower.bases import compiled as _compiled
 
 WARMUP = 12  # past the start-up window, where the step reads the step count
 CHECKED = 6

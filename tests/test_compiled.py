@@ -15,7 +15,8 @@ import pytest
 import torch
 from torch import Tensor, nn
 
-from stepsize_tower import TowerAdam, TowerAdamW, _compiled
+from stepsize_tower import TowerAdam, TowerAdamW
+from stepsize_tower.bases import compiled as _compiled
 
 
 @pytest.fixture(scope="module", autouse=True)

@@ -1,7 +1,7 @@
 """The first-step limit of Adam-like towers: ``a_0 <- min(a_0, c * s)`` before the first step.
 
 ``s`` is the geometric mean over the group's nonzero tensors of their root-mean-square entry
-(:mod:`stepsize_tower._first_step`). References: the geometric mean from SciPy
+(:mod:`stepsize_tower.safeguards`). References: the geometric mean from SciPy
 (``scipy.stats.gmean``), and the first step itself from ``torch.optim.Adam`` at the limited
 step size (one Adam step with a given lr is torch's; the tower must take exactly that step).
 """
@@ -17,7 +17,7 @@ from scipy.stats import gmean
 from torch import nn
 
 from stepsize_tower import TowerAdam, TowerAdamW
-from stepsize_tower.defaults import DEFAULT_FIRST_STEP_LIMIT
+from stepsize_tower.options import DEFAULT_FIRST_STEP_LIMIT
 
 
 def _model(zero_last: bool = False) -> nn.Module:

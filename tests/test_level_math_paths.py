@@ -12,7 +12,9 @@ from __future__ import annotations
 import pytest
 import torch
 
-from stepsize_tower.levels import Level, _tower_step_host, _tower_step_tensors, init_tower_state
+from stepsize_tower.levels import Level, init_tower_state
+from stepsize_tower.levels.host_path import tower_step_host as _tower_step_host
+from stepsize_tower.levels.tensor_path import tower_step_tensors as _tower_step_tensors
 
 STACKS = {
     "adam": [Level("adam", lr=0.05)],

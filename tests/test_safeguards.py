@@ -88,7 +88,8 @@ def test_gradient_spike_after_the_start_up_window_takes_the_last_step_back(momen
     a gradient RETREAT_GROWTH+ times the largest seen moves the weights back along the last
     direction, ``w <- w + (a_prev - a_new) d``, with ``a_new = a_prev / (1 + r)``, and the
     spiking gradient is discarded."""
-    from stepsize_tower.tower import RETREAT_GROWTH, RETREAT_WINDOW
+    from stepsize_tower.safeguards import RETREAT_BLOWUP as RETREAT_GROWTH
+    from stepsize_tower.safeguards import RETREAT_WINDOW
 
     w = torch.zeros(4, dtype=torch.float64, requires_grad=True)
     opt = TowerSGD([w], lr=0.01, momentum=momentum)

@@ -37,7 +37,7 @@ from types import ModuleType, TracebackType
 from typing import Any
 
 from .execute import TrialJob, lost_record, run_trial
-from .executors import Executor, ExecutorError, OnRecord
+from .executor_api import Executor, ExecutorError, OnRecord
 from .pool import Progress
 
 __all__ = [

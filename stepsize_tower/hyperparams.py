@@ -1,4 +1,4 @@
-"""Learning hyperparameters in (0, 1) other than the step size: SGD's momentum, Adam's betas.
+"""Learned hyperparameters in (0, 1) other than the step size: SGD's momentum, Adam's betas.
 
 The same one-step-back rule as for step sizes: for a hyperparameter θ of the base,
 with ``T_{s-1} = ∂d_{0,s-1}/∂θ_{s-1}`` (a tangent the base keeps per parameter)::
@@ -6,7 +6,7 @@ with ``T_{s-1} = ∂d_{0,s-1}/∂θ_{s-1}`` (a tangent the base keeps per parame
     h_θ,s = ∂L_s/∂θ_{s-1} = <g_s, ∂w_{s-1}/∂θ_{s-1}> = -a_{0,s-1} <g_s, T_{s-1}>
 
 θ is learned in logit space, ``θ = sigmoid(z)``, so it stays inside (0, 1) by
-construction, with one Adam-like (or SGD-like) :class:`Level` of fixed step size::
+construction, with one Adam-like (or SGD-like) :class:`~stepsize_tower.levels.Level` of fixed step size::
 
     ĥ_z = h_θ θ (1 - θ)
     z_s = z_{s-1} - η d(ĥ_z)          (d as for levels; |z| <= LOGIT_BOUND)
@@ -23,15 +23,15 @@ from typing import Any
 import torch
 from torch import Tensor
 
-from .levels import Level
+from .levels import Level, moment_direction
 
-__all__ = ["LOGIT_BOUND", "hyper_step", "init_hyper_state"]
+__all__ = ["LOGIT_BOUND", "hyperparam_step", "init_hyperparam_state"]
 
 #: Logits are clamped to ``[-LOGIT_BOUND, LOGIT_BOUND]``: values stay within about 2e-9 of (0, 1).
 LOGIT_BOUND = 20.0
 
 
-def init_hyper_state(values: Sequence[float], device: torch.device) -> dict[str, Tensor]:
+def init_hyperparam_state(values: Sequence[float], device: torch.device) -> dict[str, Tensor]:
     """State for learning ``values`` (each in (0, 1)); merged into the group's tower state."""
     for v in values:
         if not 0.0 < v < 1.0:
@@ -48,7 +48,7 @@ def init_hyper_state(values: Sequence[float], device: torch.device) -> dict[str,
     }
 
 
-def hyper_step(ts: dict[str, Tensor], tangent_dots: Tensor, a0_prev: Tensor, level: Level) -> None:
+def hyperparam_step(ts: dict[str, Tensor], tangent_dots: Tensor, a0_prev: Tensor, level: Level) -> None:
     """Update the learned hyperparameters in place from ``<g_s, T_{s-1}>`` (shape [H]).
 
     Does nothing on the first call (no tangent exists yet); call only for taken steps.
@@ -61,7 +61,7 @@ def hyper_step(ts: dict[str, Tensor], tangent_dots: Tensor, a0_prev: Tensor, lev
     v = beta2 * ts["hyper_exp_avg_sq"] + (1 - beta2) * h * h
     count = ts["hyper_count"]
     if level.kind == "adam":
-        direction = (m / (1 - beta1**count)) / ((v / (1 - beta2**count)).sqrt() + level.eps)
+        direction = moment_direction(m, v, 1 - beta1**count, 1 - beta2**count, level.eps)
     else:
         direction = h
     new_z = (z - level.lr * direction).clamp(-LOGIT_BOUND, LOGIT_BOUND)

@@ -1,11 +1,9 @@
-r"""Compiled (torch.compile / inductor) kernels for the Adam update with the trail of updates.
+r"""The experiment's own compiled Adam + trail kernels (``experiments/fused_pass.py``).
 
-:func:`two_pass_dot` and :func:`adam_trail_update` are the step of ``TowerAdam(compiled=True)``
-(:meth:`stepsize_tower.adam.AdamRule.trail_dot` / ``update_with_trail``). A one-step-lagged
-variant (the dot product folded into the update loop) lives in ``experiments/fused_pass.py``,
-which measured it: it saved too little to be worth a hypergradient one step late (README). Every function
-runs the same code eagerly when :func:`available` is False (no inductor, no C++ compiler, or
-``STEPSIZE_TOWER_COMPILE=0``); the optimizer then takes its default path instead.
+A self-contained copy of the kernels of ``TowerAdam(compiled=True)``
+(``stepsize_tower/bases/compiled.py``) with the helpers the experiment builds its variants
+from: per-tensor values (:func:`adam_trail_values`), the eager bodies, the compile wrapper
+and a switch to run everything eagerly (``STEPSIZE_TOWER_COMPILE=0``).
 
 Notation, per parameter tensor (float32): weights :math:`w`, gradient :math:`g`, Adam moments
 :math:`m, v`, trail :math:`E` (moving average of recent updates, weight :math:`\omega = 1-\gamma`),

@@ -1,0 +1,185 @@
+"""One step of one parameter group, in the order of the algorithm.
+
+::
+
+    plan       the step's flags, once                                    (plan.make_plan)
+    measure    <g_s, d_{0,s-1}>, <g_s, d_{0,s}>, <g_s, E>, <g_s, T_j>,
+               the largest gradient entry, finiteness (reads only)        (measure.measure)
+    complete   sum the partial values over the ranks of a sharded group  (measure.complete_across_ranks)
+    decide     anything non-finite -> skip: nothing changes, skipped += 1;
+               the loss rose (start-up test) or the gradient blew up
+               (SGD's blow-up guard) -> retreat, retreats += 1             (safeguards.decide / take_back)
+    learn      learned momentum / betas (hyperparams.hyperparam_step), then the levels,
+               top-down, with the growth search -> a_{0,s} (levels.tower_step),
+               cut by the first-step limit on the first step             (safeguards.limit_first_step)
+    apply      w_s = w_{s-1} - a_{0,s} d_{0,s} (the base's update), folded into the trail  (trail)
+
+Host reads: the step count and one skip/retreat flag per group; all learned values stay tensors.
+A group with nothing to learn (depth 0, no learned hyperparameters) is the base optimizer
+itself, with non-finite steps skipped (:func:`plain_step`).
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import torch
+from torch import Tensor
+
+from . import distributed, trail
+from .bases import BaseRule, CompiledTrail
+from .group_state import TOWER_KEY, new_tower_state, publish_effective_lr
+from .hyperparams import hyperparam_step
+from .levels import Level, tower_step
+from .measure import Measurement, complete_across_ranks, grads_finite, measure
+from .plan import Batch, Plan, make_plan
+from .safeguards import decide, limit_first_step, take_back, typical_scale
+from .search import keeps_searching
+
+__all__ = ["step_group"]
+
+
+def step_group(rule: BaseRule, group: dict[str, Any], state: Any, owner: str) -> None:
+    """One optimizer step of ``group``; ``state`` is the optimizer's per-parameter state."""
+    sharded = distributed.shards_across_ranks(group)
+    batch = _batch(group, state, sharded, owner)
+    if batch is None:
+        return
+    device = batch.params[0].device if batch.params else distributed.local_device(group)
+    ts = group.get(TOWER_KEY)
+    if ts is None:
+        ts = group[TOWER_KEY] = new_tower_state(group, rule.learned_initial(group), device)
+    if not group["levels"] and "hyper_value" not in ts:
+        plain_step(rule, group, state, ts, batch, sharded)
+        return
+    plan = make_plan(group, ts, rule, batch, sharded)
+    m = measure(rule, group, ts, plan, batch)
+    if sharded:  # partial sums over this rank's parameters: complete them before deciding
+        completed = complete_across_ranks(m, group, len(batch.params))
+        if completed is None:
+            return  # no rank had a gradient in this group
+        m = completed
+    update_dot = _update_dot(plan, m)
+    finite = _all_finite(m, update_dot)
+    decision = decide(ts, finite, m.prev_dot, m.gmax, plan.startup_test)
+    if decision.skip:
+        ts["skipped"] += 1
+        return
+    if decision.retreat_factor is not None:
+        take_back(rule, group, ts, batch.params, batch.states, plan.unit_of, plan.a_prev, decision.retreat_factor)
+        return
+    a0 = learn(rule, group, ts, plan, batch, m, update_dot)
+    apply(rule, group, ts.get("hyper_value"), plan, batch, a0)
+
+
+def _batch(group: dict[str, Any], state: Any, sharded: bool, owner: str) -> Batch | None:
+    """The group's tensors with a gradient (None when there are none and no rank needs this one)."""
+    indexed = [(i, p) for i, p in enumerate(group["params"]) if p.grad is not None]
+    if not indexed and not sharded:
+        return None
+    for _, p in indexed:
+        if p.grad.is_sparse:
+            raise RuntimeError(
+                f"{owner} does not support sparse gradients; make them dense (e.g. nn.Embedding(..., sparse=False)) "
+                "or give those parameters torch.optim.SparseAdam"
+            )
+        if torch.is_complex(p):
+            raise RuntimeError(f"{owner} does not support complex parameters; optimize torch.view_as_real(p) instead")
+    params, grads = distributed.local_parts([p for _, p in indexed], sharded, owner)
+    return Batch(params, grads, [state[p] for _, p in indexed], [i for i, _ in indexed])
+
+
+def _update_dot(plan: Plan, m: Measurement) -> Tensor:
+    """``<g_s, Δ>`` against the trail (``D = E / (1 - γ)``) or the last update ``Δ = a_{0,s-1} d_{0,s-1}``."""
+    if m.trail_dot is not None:
+        return m.trail_dot / (1.0 - plan.horizon)
+    return m.prev_dot * plan.a_prev
+
+
+def _all_finite(m: Measurement, update_dot: Tensor) -> Tensor:
+    checks = [update_dot, m.slope, m.prev_dot] + [c for c in (m.gmax, m.tangent_dots) if c is not None]
+    return m.finite & torch.isfinite(torch.cat([c.reshape(-1) for c in checks])).all()
+
+
+def learn(
+    rule: BaseRule,
+    group: dict[str, Any],
+    ts: dict[str, Tensor],
+    plan: Plan,
+    batch: Batch,
+    m: Measurement,
+    update_dot: Tensor,
+) -> Tensor:
+    """Learned hyperparameters, then the levels; returns this step's ``a_0`` [U] and counts the step."""
+    ts["retreated"].fill_(0)
+    if m.tangent_dots is not None:
+        hyperparam_step(ts, m.tangent_dots, plan.a_prev.mean(), Level(**group["hyper_level"]))
+        ts["prev_lr"] = plan.lr0
+    if plan.levels:
+        search_dot = keeps_searching(m.prev_dot, ts["prev_slope"]) if plan.searching else None
+        a0 = tower_step(ts, plan.levels, update_dot, group["lr"], search_dot, plan.search_max_move)
+    else:
+        a0 = plan.lr0.expand(plan.units)
+    limit = group.get("first_step_limit")
+    if limit is not None and plan.steps_taken == 0 and plan.levels and rule.normalized:
+        a0 = limit_first_step(ts, a0, float(limit), _typical_scale(group, plan, batch, a0))
+    publish_effective_lr(group, a0)
+    ts["prev_slope"].copy_(m.slope)
+    if m.gmax is not None:
+        torch.maximum(ts["peak_gmax"], m.gmax, out=ts["peak_gmax"])
+    ts["step"] += 1
+    return a0
+
+
+def _typical_scale(group: dict[str, Any], plan: Plan, batch: Batch, a0: Tensor) -> Tensor:
+    return typical_scale(
+        batch.params,
+        plan.unit_of,
+        a0.shape[0],
+        a0.device,
+        reduce_group=distributed.shard_group(group["params"]) if plan.sharded else None,
+        sharded=plan.sharded,
+        per_tensor_shards=any(distributed.is_dtensor(p) for p in group["params"]),
+    )
+
+
+def apply(rule: BaseRule, group: dict[str, Any], learned: Tensor | None, plan: Plan, batch: Batch, a0: Tensor) -> None:
+    """The base update with step sizes ``a0`` [units], folded into the trail when ``horizon > 0``."""
+    if not batch.params:  # a rank holding none of a sharded group's parameters
+        return
+    per_unit = [a0[u] for u in range(a0.shape[0])]  # one tensor per unit: one fused kernel call per unit
+    step_sizes = [per_unit[u] for u in plan.unit_of]
+    params, grads, states = batch.params, batch.grads, batch.states
+    horizon = plan.horizon if plan.levels else 0.0
+    if horizon == 0:
+        rule.update(group, learned, params, grads, states, step_sizes)
+        return
+    trails = trail.ensure(params, states)
+    weight = 1.0 - horizon
+    if a0.shape[0] == 1 and isinstance(rule, CompiledTrail):
+        if rule.update_with_trail(group, params, grads, states, trails, a0[0], weight):
+            return
+    trail.fold_update(trails, params, weight, lambda: rule.update(group, learned, params, grads, states, step_sizes))
+
+
+def plain_step(
+    rule: BaseRule, group: dict[str, Any], state: Any, ts: dict[str, Tensor], batch: Batch, sharded: bool
+) -> None:
+    """Depth 0, nothing learned: the base optimizer itself, with non-finite steps skipped."""
+    finite = grads_finite(batch.grads) if batch.grads else torch.ones((), dtype=torch.bool)
+    if sharded:
+        count, finite, _, _ = distributed.reduce_across_ranks(
+            len(batch.params), finite, [], None, distributed.shard_group(group["params"])
+        )
+        if count == 0:
+            return
+    if not bool(finite):
+        ts["skipped"] += 1
+        return
+    ts["step"] += 1
+    lr = torch.as_tensor(group["lr"], dtype=torch.float64, device=ts["step"].device).reshape(1)
+    publish_effective_lr(group, lr)
+    rule.torch_update(group, batch.params, batch.grads, batch.states)
+    for i, st in zip(batch.indices, batch.states, strict=True):
+        if not st:  # a base that keeps nothing (plain SGD): no entry, as in torch.optim
+            del state[group["params"][i]]

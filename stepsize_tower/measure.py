@@ -1,0 +1,124 @@
+"""Measure: the dot products, the largest gradient entry and the finiteness test of one step (reads only)."""
+
+from __future__ import annotations
+
+from collections.abc import Iterable
+from dataclasses import dataclass, replace
+from typing import Any
+
+import torch
+from torch import Tensor
+
+from . import distributed, trail
+from .bases import BaseRule, CompiledTrail
+from .plan import Batch, Plan
+
+__all__ = ["Measurement", "complete_across_ranks", "grads_finite", "measure"]
+
+
+@dataclass(frozen=True)
+class Measurement:
+    """Per unit (shape [U]) unless noted; partial sums over this rank's tensors until completed."""
+
+    #: ``<g_s, d_{0,s-1}>`` (zeros unless the plan is exact or hyperparameters are learned).
+    prev_dot: Tensor
+    #: ``<g_s, d_{0,s}>``, the direction this step would take (zeros unless a test needs it).
+    slope: Tensor
+    #: ``<g_s, E>`` against the trail (``horizon > 0`` with levels), else None.
+    trail_dot: Tensor | None
+    #: ``<g_s, T_j>`` [H] for the learned hyperparameters, else None.
+    tangent_dots: Tensor | None
+    #: The largest absolute gradient entry (SGD's blow-up guard), else None.
+    gmax: Tensor | None
+    #: Whether the gradients are finite, where no dot product above has seen them.
+    finite: Tensor
+
+
+def _per_unit(plan: Plan, values: Iterable[Tensor], device: torch.device) -> Tensor:
+    """Sum per-tensor values (float32 or float64; summed in float64) into the units."""
+    listed = list(values)
+    if not listed:
+        return torch.zeros(plan.units, dtype=torch.float64, device=device)
+    if plan.unit_index is None:  # one unit: the group
+        return torch.stack(listed).double().sum().reshape(1)
+    out = torch.zeros(plan.units, dtype=torch.float64, device=plan.unit_index.device)
+    return out.index_add_(0, plan.unit_index, torch.stack(listed).double())
+
+
+def measure(rule: BaseRule, group: dict[str, Any], ts: dict[str, Tensor], plan: Plan, batch: Batch) -> Measurement:
+    """Everything the decisions and the levels need from this step's gradients."""
+    device = ts["step"].device
+    prev_dot = slope = torch.zeros(plan.units, dtype=torch.float64, device=device)
+    tangent_dots = None
+    if plan.exact or plan.learns_hyperparams:
+        learned = ts.get("hyper_value")
+        probes = [
+            rule.probe(
+                group, learned, p, g, st, plan.a_prev[u], exact=plan.exact, slope=plan.startup_test or plan.searching
+            )
+            for p, g, st, u in zip(batch.params, batch.grads, batch.states, plan.unit_of, strict=True)
+        ]
+        prev_dot = _per_unit(plan, (pr.prev_dot for pr in probes), device)
+        slope = _per_unit(plan, (pr.slope for pr in probes), device)
+        if plan.learns_hyperparams:
+            tangent_dots = (
+                torch.stack([torch.stack(pr.tangent_dots) for pr in probes]).double().sum(dim=0)
+                if probes
+                else torch.zeros_like(ts["hyper_value"])
+            )
+    trail_dot = _trail_dot(rule, group, plan, batch, device) if plan.horizon > 0 and plan.levels else None
+    gmax = _grad_max(batch.grads) if plan.blowup_guard else None
+    # Every dot product contains a gradient, and inf * 0 = nan: a non-finite gradient shows in
+    # them, except on a step where no dot product saw the gradient (no trail yet).
+    finite = torch.isfinite(gmax) if gmax is not None else torch.ones((), dtype=torch.bool, device=device)
+    if not (plan.exact or plan.learns_hyperparams) and not trail.has_trail(batch.states):
+        finite = finite & grads_finite(batch.grads)
+    return Measurement(prev_dot, slope, trail_dot, tangent_dots, gmax, finite)
+
+
+def _trail_dot(rule: BaseRule, group: dict[str, Any], plan: Plan, batch: Batch, device: torch.device) -> Tensor:
+    """``<g_s, D_{s-1}>`` per unit, kept as its moving average ``E = (1 - γ) D``: from the base's
+    compiled read pass where it has one (one step size for the group), else tensor by tensor."""
+    if isinstance(rule, CompiledTrail) and batch.params and trail.has_trail(batch.states):
+        trails = [st[trail.TRAIL_KEY] for st in batch.states]
+        fast = rule.trail_dot(group, batch.params, batch.grads, trails)
+        if fast is not None:
+            return fast.reshape(1).to(device)
+    zero = torch.zeros((), dtype=torch.float64, device=device)
+
+    def loss_grad(p: Tensor, g: Tensor) -> Tensor:
+        return rule.loss_grad(group, p, g)
+
+    # Each product in the tensors' precision, summed in float64 by _per_unit (one cast).
+    return _per_unit(plan, trail.dots(loss_grad, batch.params, batch.grads, batch.states, zero), device)
+
+
+def complete_across_ranks(m: Measurement, group: dict[str, Any], count: int) -> Measurement | None:
+    """The sums over every rank of a sharded group (one collective); None when no rank had a gradient."""
+    sums = [m.prev_dot, m.slope, m.trail_dot, m.tangent_dots]
+    total, finite, reduced, gmax = distributed.reduce_across_ranks(
+        count, m.finite, sums, m.gmax, distributed.shard_group(group["params"])
+    )
+    if total == 0:
+        return None
+    prev_dot, slope = reduced[0], reduced[1]
+    assert prev_dot is not None and slope is not None
+    return replace(
+        m, prev_dot=prev_dot, slope=slope, trail_dot=reduced[2], tangent_dots=reduced[3], gmax=gmax, finite=finite
+    )
+
+
+def _grad_max(grads: list[Tensor]) -> Tensor:
+    """The largest absolute gradient entry (float64); inf or nan if any entry is. Never overflows.
+
+    One ``aminmax`` pass per tensor (the max-abs norm kernel is ~15x slower on CPU).
+    """
+    extremes = [torch.stack(torch.aminmax(g)) for g in grads if g.numel()]
+    if not extremes:  # no entries (or, on a rank holding none of a sharded group, no tensors)
+        return torch.zeros((), dtype=torch.float64, device=grads[0].device if grads else None)
+    return torch.stack(extremes).abs().max().double()
+
+
+def grads_finite(grads: list[Tensor]) -> Tensor:
+    """Whether every gradient is finite."""
+    return torch.isfinite(_grad_max(grads))

@@ -1,0 +1,89 @@
+"""What one step of a parameter group will do, decided once from its options and state."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Any
+
+import torch
+from torch import Tensor
+
+from .bases import BaseRule
+from .group_state import levels_of
+from .levels import Level
+from .safeguards import RETREAT_WINDOW
+
+__all__ = ["Batch", "Plan", "make_plan"]
+
+
+@dataclass(frozen=True)
+class Batch:
+    """The tensors of a group that have a gradient this step (this rank's shards under FSDP2)."""
+
+    params: list[Tensor]
+    grads: list[Tensor]
+    states: list[dict[str, Any]]
+    #: Index of each parameter among the group's parameters (its unit with ``granularity="tensor"``).
+    indices: list[int]
+
+
+@dataclass(frozen=True)
+class Plan:
+    """The flags of one step of one group (each derived once, here)."""
+
+    levels: tuple[Level, ...]
+    units: int
+    #: The unit of each tensor of the batch; ``unit_index`` the same as a tensor (None: one unit).
+    unit_of: list[int]
+    unit_index: Tensor | None
+    #: ``a_{0,s-1}`` per unit, and ``group["lr"]`` as a [1] float64 tensor.
+    a_prev: Tensor
+    lr0: Tensor
+    horizon: float
+    sharded: bool
+    learns_hyperparams: bool
+    steps_taken: int
+    #: The growth search is on and some unit still searches; its largest move per step.
+    searching: bool
+    search_max_move: float | None
+    #: The start-up test runs (the loss rose along the last step: retreat).
+    startup_test: bool
+    #: SGD's blow-up guard runs (the largest gradient entry blew up: retreat).
+    blowup_guard: bool
+    #: The one-step dot products ``<g_s, d_{0,s-1}>`` are needed (no trail, or a test uses them).
+    exact: bool
+
+
+def make_plan(group: dict[str, Any], ts: dict[str, Tensor], rule: BaseRule, batch: Batch, sharded: bool) -> Plan:
+    """The step's flags; at most one host read (the step count, and whether a unit still searches)."""
+    levels = levels_of(group)
+    units = ts["log_step"].shape[0]
+    per_tensor = group["granularity"] == "tensor"
+    unit_of = list(batch.indices) if per_tensor else [0] * len(batch.params)
+    lr0 = torch.as_tensor(group["lr"], dtype=torch.float64, device=ts["step"].device).reshape(1)
+    search_max_move = group.get("growth_search") if levels and "search" in ts else None
+    if search_max_move is None:
+        steps_taken, searching = int(ts["step"]), False
+    else:  # one host read for both
+        counters = torch.stack([ts["step"], (ts["search"] >= 0).any().to(ts["step"].dtype)]).tolist()
+        steps_taken, searching = int(counters[0]), bool(counters[1])
+    horizon = float(group["horizon"])
+    # The start-up test runs in the first steps and for as long as the growth search goes on.
+    startup_test = bool(group["retreat"]) and bool(levels) and (steps_taken < RETREAT_WINDOW or searching)
+    return Plan(
+        levels=levels,
+        units=units,
+        unit_of=unit_of,
+        unit_index=torch.tensor(unit_of, device=ts["step"].device) if per_tensor else None,
+        a_prev=ts["prev_step"][:, 0] if levels else ts.get("prev_lr", lr0).expand(units),
+        lr0=lr0,
+        horizon=horizon,
+        sharded=sharded,
+        learns_hyperparams="hyper_value" in ts,
+        steps_taken=steps_taken,
+        searching=searching,
+        search_max_move=search_max_move,
+        startup_test=startup_test,
+        blowup_guard=bool(group["retreat"]) and bool(levels) and not rule.normalized,
+        exact=horizon == 0 or startup_test or searching,
+    )

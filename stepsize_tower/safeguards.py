@@ -1,0 +1,225 @@
+r"""Safeguards of the step: the start-up test, SGD's blow-up guard, and the first-step limit.
+
+Retreat (the start-up test): along the last direction ``d = d_{0,s-1}``, the loss
+``φ(a) = L(w_{s-2} - a d)`` has slope ``φ'(0) = -<g_{s-1}, d>`` at the start of the last step
+and ``φ'(a_{0,s-1}) = -<g_s, d>`` at its end. On a quadratic, ``rho = φ'(a)/φ'(0) < -1``
+exactly when the loss rose, and the minimizer along ``d`` is ``a / (1 - rho)``. So, during
+the first ``RETREAT_WINDOW`` steps (and while the growth search goes on), the last step is
+taken back and redone with that secant step size::
+
+    w <- w_{s-2} - a_new d,   a_new = a_{0,s-1} * clip(1 / (1 - rho), RETREAT_MIN_FACTOR, 1/2)
+
+Later, minibatch noise alone makes ``rho < -1`` too often; only bases whose update grows
+with the gradient (SGD) keep a guard, against divergence: when the largest gradient entry
+exceeds ``r > RETREAT_BLOWUP`` times the largest seen so far, ``a_new = a_{0,s-1} / (1 + r)``.
+A retreat discards ``g_s`` (it came from a rejected point): neither the base's moments nor the
+levels see it, and the trail is cleared. It costs no extra forward pass, and stops a step size
+that is orders of magnitude too large from wrecking the model in its first steps.
+
+First-step limit (normalized bases, ``first_step_limit``): an Adam-like base moves every
+weight by about ``a_0`` on its first step (``|m̂ / √v̂| = 1`` there), whatever the gradient.
+When ``a_0`` is larger than the weights' own typical size, that step replaces the
+initialization instead of adjusting it, and the next gradient need not show it: a saturated
+model has a flat loss, so the start-up test sees no overshoot. So before the first step
+
+.. math::
+
+    a_0 \leftarrow \min\bigl(a_0,\; c \cdot s\bigr), \qquad
+    s = \exp\Bigl(\tfrac{1}{|T|} \sum_{t \in T} \log \operatorname{rms}(w_t)\Bigr),
+
+the geometric mean over the unit's tensors ``T`` with a nonzero root-mean-square entry
+(tensors are weighted alike, so a wide embedding table does not set the scale of every
+matrix). All-zero tensors carry no scale; a unit with none is not limited. The levels then
+take over from the limited value. ``c`` is the ``first_step_limit`` option (default
+:data:`stepsize_tower.options.DEFAULT_FIRST_STEP_LIMIT`, measured; ``None`` turns it off).
+Sharded groups reduce exactly: under FSDP2 every rank holds a shard of every tensor (the
+squares and counts are summed per tensor across ranks), under ZeroRedundancyOptimizer every
+tensor lives whole on one rank (the logs and counts are summed).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Any
+
+import torch
+from torch import Tensor
+from torch import distributed as dist
+
+from . import trail
+from .bases import BaseRule, chunks
+from .group_state import publish_effective_lr
+
+__all__ = [
+    "RETREAT_AGAIN_RATIO",
+    "RETREAT_BLOWUP",
+    "RETREAT_MIN_FACTOR",
+    "RETREAT_WINDOW",
+    "Decision",
+    "decide",
+    "limit_first_step",
+    "take_back",
+    "typical_scale",
+]
+
+#: Smallest factor one retreat applies to the step size (retreats on later steps compound).
+RETREAT_MIN_FACTOR = 1e-4
+
+#: Retreats are considered during the first this-many taken steps only: the start-up phase in
+#: which the typed step size is still untested. Later, minibatch noise alone makes consecutive
+#: gradients oppose often enough that the test would cut good step sizes (measured: see experiments/README.md).
+RETREAT_WINDOW = 10
+
+#: Right after a retreat, the retried step is taken back again only if ``rho < -RETREAT_AGAIN_RATIO``:
+#: the new minibatch alone can make ``rho`` mildly negative, but not by this much.
+RETREAT_AGAIN_RATIO = 10.0
+
+#: At any step, a step of a base whose update grows with the gradient (SGD) is taken back when
+#: the largest gradient entry exceeds this factor ``r`` times the largest one seen so far in the
+#: run (a divergence: near convergence, gradients far below the peak may jump by 10x harmlessly).
+#: On a quadratic the gradient along the sharpest direction grows by ``|1 - a / a*|`` per step,
+#: so the step size is cut to ``a / (1 + r)``. The trail of updates is cleared: it held the
+#: unstable steps.
+RETREAT_BLOWUP = 10.0
+
+
+@dataclass(frozen=True)
+class Decision:
+    """What happens to this step: skipped (something non-finite), taken back (``retreat_factor``), or taken."""
+
+    skip: bool
+    retreat_factor: Tensor | None
+
+
+def decide(
+    ts: dict[str, Tensor],
+    finite: Tensor,
+    prev_dot: Tensor,
+    gmax: Tensor | None,
+    startup_test: bool,
+) -> Decision:
+    """Skip, retreat (with its factor on ``a_{0,s-1}``) or take the step; one host read.
+
+    ``finite``: every measured value is finite; ``prev_dot``: ``<g_s, d_{0,s-1}>`` per unit;
+    ``gmax``: the largest gradient entry when the blow-up guard runs.
+    """
+    retreat: Tensor | None = None
+    secant: Tensor | None = None
+    rho: Tensor | None = None
+    blowup_ratio: Tensor | None = None
+    if startup_test:  # the loss rose along the last step (secant ratio rho)
+        prev_slope = ts["prev_slope"].sum()
+        rho = prev_dot.sum() / prev_slope
+        threshold = torch.where(ts["retreated"].bool(), -RETREAT_AGAIN_RATIO, -1.0)
+        retreat = secant = (prev_slope > 0) & (rho < threshold)
+    if gmax is not None:  # any time (SGD): the largest gradient entry grew RETREAT_BLOWUP x
+        blowup_ratio = gmax / ts["peak_gmax"]
+        blowup = (ts["peak_gmax"] > 0) & (blowup_ratio > RETREAT_BLOWUP)
+        retreat = blowup if retreat is None else retreat | blowup
+    if retreat is None:
+        return Decision(skip=not bool(finite), retreat_factor=None)
+    skip_now, retreat_now = torch.stack([~finite, retreat]).tolist()
+    if skip_now or not retreat_now:
+        return Decision(skip=bool(skip_now), retreat_factor=None)
+    # The secant minimizer along the step, or the blow-up guard's cut (whichever test fired).
+    if secant is not None and rho is not None and blowup_ratio is not None:
+        factor = torch.where(secant, 1.0 / (1.0 - rho), 1.0 / (1.0 + blowup_ratio))
+    elif rho is not None:
+        factor = 1.0 / (1.0 - rho)
+    else:
+        assert blowup_ratio is not None
+        factor = 1.0 / (1.0 + blowup_ratio)
+    return Decision(skip=False, retreat_factor=factor)
+
+
+def take_back(
+    rule: BaseRule,
+    group: dict[str, Any],
+    ts: dict[str, Tensor],
+    params: list[Tensor],
+    states: list[dict[str, Any]],
+    unit_of: list[int],
+    a_prev: Tensor,
+    factor: Tensor,
+) -> None:
+    """Take the last step back and redo it with ``a_prev * factor`` (clipped); the levels stay as they are."""
+    factor = torch.clamp(factor, min=RETREAT_MIN_FACTOR, max=0.5)
+    a_new = a_prev * factor
+    learned = ts.get("hyper_value")
+    for p, st, u in zip(params, states, unit_of, strict=True):
+        rule.retreat(group, learned, p, st, a_prev[u], a_new[u])
+        trail.clear(st)  # the trail held the unstable steps
+    ts["log_step"][:, 0] += factor.log()
+    ts["prev_step"][:, 0] = a_new
+    if "search" in ts:  # a step too large ends the growth search
+        ts["search"].fill_(-1.0)
+    ts["retreats"] += 1
+    ts["retreated"].fill_(1)
+    publish_effective_lr(group, a_new)
+
+
+def limit_first_step(
+    ts: dict[str, Tensor],
+    a0: Tensor,
+    limit: float,
+    scale: Tensor,
+) -> Tensor:
+    """``a_0 <- min(a_0, limit * scale)`` per unit before the first step, the levels' state moved alike."""
+    cap = limit * scale
+    over = (scale > 0) & (a0 > cap)
+    ratio = torch.where(over, cap / torch.where(over, a0, 1.0), 1.0)
+    ts["log_step"][:, 0] += ratio.log()
+    ts["prev_step"][:, 0] *= ratio
+    return a0 * ratio
+
+
+def typical_scale(
+    params: list[Tensor],
+    unit_of: list[int],
+    units: int,
+    device: torch.device,
+    *,
+    reduce_group: Any = None,
+    sharded: bool = False,
+    per_tensor_shards: bool = False,
+) -> Tensor:
+    """Per unit, the geometric mean of the nonzero per-tensor RMS values (0 where there is none).
+
+    ``params`` are this rank's (local) tensors. With ``sharded``, the values are completed
+    across ``reduce_group``: per tensor when every rank holds a shard of every tensor
+    (``per_tensor_shards``, FSDP2), else per unit (whole tensors spread over ranks, ZeRO).
+    Every rank of a sharded group must call it (it all-reduces). Float64, shape [units].
+    """
+    dtype = torch.float64
+    if params:
+        squares = torch.stack([torch.linalg.vector_norm(chunks.flat(p), dtype=dtype) ** 2 for p in params]).to(device)
+    else:
+        squares = torch.zeros(0, dtype=dtype, device=device)
+    counts = torch.tensor([float(p.numel()) for p in params], dtype=dtype, device=device)
+    if sharded and per_tensor_shards:
+        packed = torch.cat([squares, counts])
+        dist.all_reduce(packed, op=dist.ReduceOp.SUM, group=reduce_group)
+        squares, counts = packed[: len(params)], packed[len(params) :]
+    rms = (squares / counts.clamp(min=1.0)).sqrt()
+    present = rms > 0
+    logs = torch.where(present, rms.clamp(min=torch.finfo(dtype).tiny).log(), 0.0)
+    index = torch.tensor(unit_of, dtype=torch.long, device=device)
+    log_sum = _sum_into_units(logs, index, units)
+    count = _sum_into_units(present.to(dtype), index, units)
+    if sharded and not per_tensor_shards:
+        packed = torch.cat([log_sum, count])
+        dist.all_reduce(packed, op=dist.ReduceOp.SUM, group=reduce_group)
+        log_sum, count = packed[:units], packed[units:]
+    return torch.where(count > 0, (log_sum / count.clamp(min=1.0)).exp(), 0.0)
+
+
+def _sum_into_units(values: Tensor, index: Tensor, units: int) -> Tensor:
+    """``out[u] = Σ_{i: index[i] = u} values[i]``, float64, shape [units].
+
+    Under ``torch.compile`` as a product with a one-hot matrix: inductor's CPU code for a
+    float64 ``index_add_`` into a one-element buffer fails to generate (torch 2.13).
+    """
+    if torch.compiler.is_compiling():
+        onehot = (index[:, None] == torch.arange(units, device=index.device)[None, :]).to(values.dtype)
+        return values @ onehot
+    return torch.zeros(units, dtype=values.dtype, device=values.device).index_add_(0, index, values)

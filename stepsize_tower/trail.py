@@ -1,0 +1,69 @@
+"""The trail: a moving average ``E`` of the recent updates, the level-0 hypergradient's reference.
+
+With ``horizon = γ > 0`` the hypergradient of ``log a_0`` is taken against the decaying sum of
+recent updates ``D_{s-1} = Σ_j γ^(s-1-j) Δ_j`` instead of the last update alone; it is kept
+as its moving average ``E = (1 - γ) D``, one parameter-sized buffer per tensor (state key
+``update_ema``), and updated around the base's update::
+
+    E <- (1 - ω) E + ω Δ,   ω = 1 - γ,   Δ = w_before - w_after
+
+A retreat clears it (it held the unstable steps).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from typing import Any
+
+import torch
+from torch import Tensor
+
+from .bases import chunks
+
+__all__ = ["TRAIL_KEY", "clear", "dots", "ensure", "fold_update", "has_trail"]
+
+#: Per-parameter state key of the trail (the name checkpoints carry).
+TRAIL_KEY = "update_ema"
+
+
+def has_trail(states: list[dict[str, Any]]) -> bool:
+    """Whether every tensor already has its trail (none exists before the first taken step)."""
+    return all(TRAIL_KEY in st for st in states)
+
+
+def ensure(params: list[Tensor], states: list[dict[str, Any]]) -> list[Tensor]:
+    """Each tensor's trail, created as zeros where missing."""
+    for p, st in zip(params, states, strict=True):
+        if TRAIL_KEY not in st:
+            st[TRAIL_KEY] = torch.zeros_like(p, memory_format=torch.preserve_format)
+    return [st[TRAIL_KEY] for st in states]
+
+
+def dots(
+    loss_grad: Callable[[Tensor, Tensor], Tensor],
+    params: list[Tensor],
+    grads: list[Tensor],
+    states: list[dict[str, Any]],
+    zero: Tensor,
+) -> list[Tensor]:
+    """``<g_s, E>`` per tensor, ``g_s = loss_grad(p, grad)``, in the tensors' precision (``zero`` without a trail)."""
+    return [
+        torch.dot(chunks.flat(loss_grad(p, g)), chunks.flat(st[TRAIL_KEY])) if TRAIL_KEY in st else zero
+        for p, g, st in zip(params, grads, states, strict=True)
+    ]
+
+
+def fold_update(trails: list[Tensor], params: list[Tensor], weight: float, move: Callable[[], None]) -> None:
+    """Run ``move`` and fold the update it makes into ``E <- (1 - weight) E + weight (w_before - w_after)``.
+
+    Two passes: ``E <- lerp(E, w_before, weight)``, then ``E <- E - weight w_after``.
+    """
+    torch._foreach_lerp_(trails, params, weight)
+    move()
+    torch._foreach_add_(trails, params, alpha=-weight)
+
+
+def clear(state: dict[str, Any]) -> None:
+    """Start the tensor's trail afresh (after a retreat)."""
+    if TRAIL_KEY in state:
+        state[TRAIL_KEY].zero_()
