@@ -57,7 +57,7 @@ from torch import Tensor
 from torch import distributed as dist
 from torch.optim import Optimizer
 
-from . import _chunks
+from . import _chunks, _resume
 from ._first_step import check_first_step_limit, typical_scale
 from .hyper import hyper_step, init_hyper_state
 from .levels import Level, check_growth_search, current_step_sizes, init_tower_state, tower_step
@@ -264,11 +264,12 @@ class TowerOptimizer(Optimizer):
             group.setdefault("retreat", True)
             group.setdefault("granularity", "group")
             group.setdefault("maximize", False)
-            group.setdefault("horizon", 0.0)
+            group.setdefault("horizon", _resume.missing_horizon(group))  # measured default, not 0
             group.setdefault("sharded", False)
             if _TOWER_KEY in group:
                 for key in ("retreated", "peak_gmax"):
                     group[_TOWER_KEY].setdefault(key, torch.zeros_like(group[_TOWER_KEY]["step"]))
+        _resume.normalize_steps(self.state, self.param_groups)  # a number as Adam's step: a tensor
 
     def _make_rule(self) -> BaseRule:
         """The base rule of this optimizer class (rebuilt after unpickling)."""
@@ -315,13 +316,16 @@ class TowerOptimizer(Optimizer):
         """
         out = super().state_dict()
         params = [p for group in self.param_groups for p in group["params"]]
-        for index, st in out["state"].items():
+        for index, st in _resume.param_entries(out["state"], len(params)):  # hooks may add other keys
             p = params[index]
             if _is_dtensor(p):  # a new dict: the one torch hands out is the optimizer's own
                 out["state"][index] = {k: _as_param_layout(v, p) for k, v in st.items()}
         return out
 
     def load_state_dict(self, state_dict: dict[str, Any]) -> None:
+        state_dict = _resume.adopt_foreign_groups(  # a torch.optim checkpoint: tower options from here
+            state_dict, self.param_groups, type(self).__name__, getattr(self._rule, "decoupled", None)
+        )
         super().load_state_dict(state_dict)
         for group in self.param_groups:
             for p in group["params"]:  # FSDP2: back to this rank's shard as plain tensors
