@@ -22,14 +22,17 @@ TOWER_ARGS = """        depth: number of levels above the base; 0 is a plain fix
             a few steps, so it rarely helps there (measured; see the README) (default:
             None, off).
         maximize: maximize the objective instead of minimizing it (default: False).
-        sharded: the group's parameters are split over the ranks of the default process
-            group (``torch.distributed.optim.ZeroRedundancyOptimizer``, FSDP2
+        sharded: ``True``: the group's parameters are split over the ranks of the default
+            process group (``torch.distributed.optim.ZeroRedundancyOptimizer``, FSDP2
             ``fully_shard``): every dot product (and the largest gradient entry, and the
             finiteness test) is all-reduced across ranks before the step size moves, so all
             ranks learn the same step size. Needs ``granularity="group"``. Does nothing (no
             collective call) when ``torch.distributed`` is not initialized. Not needed under
-            ``DistributedDataParallel``, whose gradients are already all-reduced
-            (default: False).
+            ``DistributedDataParallel``, whose gradients are already all-reduced. ``None``:
+            detect: FSDP2's DTensor parameters reduce as with ``True``; otherwise the first
+            step under ``torch.distributed`` compares what the ranks hold (one small
+            all-reduce) and warns if they differ. ``False``: no reduction and no check
+            (default: None).
 
     .. note::
         Step sizes are learned in log space (``a = lr * exp(u)``), so they stay positive

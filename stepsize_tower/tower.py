@@ -57,7 +57,7 @@ from torch import Tensor
 from torch import distributed as dist
 from torch.optim import Optimizer
 
-from . import _chunks, _resume
+from . import _chunks, _rank_check, _resume
 from ._first_step import check_first_step_limit, typical_scale
 from .hyper import hyper_step, init_hyper_state
 from .levels import Level, check_growth_search, current_step_sizes, init_tower_state, tower_step
@@ -210,8 +210,8 @@ def _check_lr(lr: float | Tensor) -> None:
 
 
 def _check_sharded(sharded: Any, granularity: Any) -> None:
-    if not isinstance(sharded, bool):
-        raise ValueError(f"Invalid sharded: {sharded!r}; expected True or False")
+    if sharded is not None and not isinstance(sharded, bool):
+        raise ValueError(f"Invalid sharded: {sharded!r}; expected True, False or None (detect)")
     if sharded and granularity != "group":
         raise ValueError(
             f"sharded=True needs granularity='group' (got {granularity!r}): "
@@ -238,7 +238,8 @@ class TowerOptimizer(Optimizer):
         ``retreat``: take back a step that made the loss rise along its direction.
         ``sharded``: the group's parameters are split over the ranks of the default
             process group (``ZeroRedundancyOptimizer``, FSDP2): reduce the dot products
-            across ranks before deciding anything (see the module docstring).
+            across ranks before deciding anything (see the module docstring). ``None``
+            detects FSDP2 and warns on ranks that differ (:mod:`._rank_check`).
     """
 
     _rule: BaseRule
@@ -265,7 +266,7 @@ class TowerOptimizer(Optimizer):
             group.setdefault("granularity", "group")
             group.setdefault("maximize", False)
             group.setdefault("horizon", _resume.missing_horizon(group))  # measured default, not 0
-            group.setdefault("sharded", False)
+            group.setdefault("sharded", None)
             if _TOWER_KEY in group:
                 for key in ("retreated", "peak_gmax"):
                     group[_TOWER_KEY].setdefault(key, torch.zeros_like(group[_TOWER_KEY]["step"]))
@@ -417,6 +418,7 @@ class TowerOptimizer(Optimizer):
         if closure is not None:
             with torch.enable_grad():
                 loss = closure()
+        _rank_check.check_once(self)  # once: do the ranks hold the same parameters? (unsharded groups)
         for group in self.param_groups:
             self._step_group(group)
         return loss
@@ -683,8 +685,8 @@ class TowerOptimizer(Optimizer):
 
 
 def _shards_across_ranks(group: dict[str, Any]) -> bool:
-    """Whether the group asks for (``sharded=True``) and can do the cross-rank reduction."""
-    return bool(group.get("sharded")) and dist.is_available() and dist.is_initialized()
+    """Whether the group reduces across ranks: ``sharded=True``, or None with FSDP2 DTensors."""
+    return _rank_check.reduces_across_ranks(group)
 
 
 def _local_device(group: dict[str, Any]) -> torch.device:
