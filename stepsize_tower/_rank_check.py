@@ -24,7 +24,9 @@ process group); only the first wants the reduction, and a reduction switched on 
 ranks' groups do not line up would hang or mix unrelated models. The user knows which it is.
 
 The check assumes that every rank calls ``step()`` (DDP, ZeRO and FSDP2 all do); where only
-some ranks step an optimizer while a process group is up, pass ``sharded=False``.
+some ranks step an optimizer while a process group is up, pass ``sharded=False``. It runs
+once per optimizer object: a copy (``copy.deepcopy``, unpickling) checks again at its first
+step, as does a fresh optimizer that loads a checkpoint.
 """
 
 from __future__ import annotations
