@@ -322,8 +322,8 @@ class TowerAdam(TowerOptimizer):
 
     With ``depth=0`` this is exactly :class:`torch.optim.Adam` (``TowerAdamW``:
     :class:`torch.optim.AdamW`); it loads their checkpoints too (moments and step counts
-    carry over, the tower starts at the checkpoint's ``lr``). The update uses torch's fused Adam kernel where it
-    applies (``fused=None``). The trail of updates (``horizon > 0``) is one parameter-sized
+    carry over, the tower starts at the checkpoint's ``lr``). The update uses torch's fused
+    Adam kernel where it applies (``fused=None``). The trail of updates (``horizon > 0``) is one parameter-sized
     buffer; with ``horizon=0`` the previous direction is recomputed from the moments and the
     tower adds none.
 
