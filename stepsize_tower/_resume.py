@@ -60,8 +60,8 @@ def adopt_foreign_groups(
 
     Raises:
         ValueError: the checkpoint was written by another base (a key of :data:`BASE_KEYS`
-            is missing), by Adam with ``amsgrad=True``, or by Adam where AdamW is loading
-            it (or the reverse).
+            is missing), by Adam with ``amsgrad=True``, or by Adam with weight decay where
+            AdamW is loading it (or the reverse).
     """
     saved = state_dict.get("param_groups")
     if not isinstance(saved, list) or not any(isinstance(g, Mapping) and is_foreign(g) for g in saved):
@@ -95,7 +95,8 @@ def _check_same_base(
             "resume it with torch.optim, or start the tower from a checkpoint without AMSGrad"
         )
     saved_decoupled = group.get("decoupled_weight_decay")
-    if decoupled is not None and saved_decoupled is not None and bool(saved_decoupled) != decoupled:
+    differs = decoupled is not None and saved_decoupled is not None and bool(saved_decoupled) != decoupled
+    if differs and group.get("weight_decay", 0) != 0:  # without decay Adam and AdamW are one rule
         wanted, written = ("TowerAdamW", "AdamW") if saved_decoupled else ("TowerAdam", "Adam")
         raise ValueError(
             f"{where} was written by torch.optim.{written} (decoupled_weight_decay={bool(saved_decoupled)}); "

@@ -144,7 +144,7 @@ def test_defaults_resume_with_the_checkpoint_state_and_learn_from_there(
     [
         (torch.optim.SGD, {"lr": 0.1, "momentum": 0.9}, TowerAdam, "betas"),
         (torch.optim.Adam, {"lr": 0.1}, TowerSGD, "momentum"),
-        (torch.optim.Adam, {"lr": 0.1}, TowerAdamW, "TowerAdam,"),
+        (torch.optim.Adam, {"lr": 0.1, "weight_decay": 0.01}, TowerAdamW, "TowerAdam,"),
         (torch.optim.AdamW, {"lr": 0.1}, TowerAdam, "TowerAdamW,"),
         (torch.optim.Adam, {"lr": 0.1, "amsgrad": True}, TowerAdam, "amsgrad"),
     ],
@@ -159,6 +159,16 @@ def test_checkpoint_of_another_base_is_refused_at_load(
     opt = tower_cls(_params())
     with pytest.raises(ValueError, match=pattern):
         opt.load_state_dict(source.state_dict())
+
+
+def test_adam_checkpoint_without_weight_decay_loads_into_adamw() -> None:
+    """Without decay Adam and AdamW are one rule: the checkpoint's weight_decay=0 wins."""
+    params = _params()
+    source = torch.optim.Adam(params, lr=0.1)
+    _train(source, params, _batches()[:2])
+    opt = TowerAdamW(_params())  # constructed with AdamW's default decay 1e-2
+    opt.load_state_dict(source.state_dict())
+    assert opt.param_groups[0]["weight_decay"] == 0
 
 
 # ----------------------------------------------------------------------------- item: older tower checkpoints
