@@ -40,8 +40,9 @@ class TowerAdam(TowerOptimizer):
         \end{aligned}
 
     With ``depth=0`` this is exactly :class:`torch.optim.Adam` (``TowerAdamW``:
-    :class:`torch.optim.AdamW`). The update uses torch's fused Adam kernel where it
-    applies (``fused=None``). The trail of updates (``horizon > 0``) is one parameter-sized
+    :class:`torch.optim.AdamW`); it loads their checkpoints too (moments and step counts
+    carry over, the tower starts at the checkpoint's ``lr``). The update uses torch's fused
+    Adam kernel where it applies (``fused=None``). The trail of updates (``horizon > 0``) is one parameter-sized
     buffer; with ``horizon=0`` the previous direction is recomputed from the moments and the
     tower adds none.
 
@@ -78,7 +79,7 @@ class TowerAdam(TowerOptimizer):
         fused: bool | None = None,
         learn_betas: bool = False,
         hyper_level: Level | None = None,
-        sharded: bool = False,
+        sharded: bool | None = None,
         compiled: bool = False,
         first_step_limit: float | None = DEFAULT_FIRST_STEP_LIMIT,
         growth_search: float | None = None,

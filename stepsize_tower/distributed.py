@@ -19,6 +19,8 @@ import torch
 from torch import Tensor
 from torch import distributed as dist
 
+from . import _rank_check
+
 __all__ = [
     "as_param_layout",
     "is_dtensor",
@@ -34,7 +36,7 @@ __all__ = [
 
 def shards_across_ranks(group: dict[str, Any]) -> bool:
     """Whether the group asks for (``sharded=True``) and can do the cross-rank reduction."""
-    return bool(group.get("sharded")) and dist.is_available() and dist.is_initialized()
+    return _rank_check.reduces_across_ranks(group)
 
 
 def local_device(group: dict[str, Any]) -> torch.device:

@@ -175,6 +175,12 @@ def _check_bool(name: str) -> Callable[[Any], str | None]:
     return check
 
 
+def _check_sharded_flag(value: Any) -> str | None:
+    if value is None or isinstance(value, bool):
+        return None
+    return f"Invalid sharded: {value!r}; expected True, False or None (detect)"
+
+
 def _check_first_step_limit(limit: Any) -> str | None:
     if limit is None or (_is_number(limit) and math.isfinite(limit) and limit > 0):
         return None
@@ -238,8 +244,9 @@ def _check_betas(betas: Any) -> str | None:
 class Option:
     """One option: its check (an error message, or None when valid), its doc line(s), its legacy value.
 
-    ``legacy`` is the value a group saved before the option existed gets when loaded (the
-    behaviour of the code at the time); ``_ABSENT`` for options every checkpoint has.
+    ``legacy`` is the value a group saved before the option existed gets when loaded, or a
+    function of the loaded group giving it (e.g. the measured default for that group);
+    ``_ABSENT`` for options every checkpoint has.
     ``default_doc`` replaces the signature's default in the documentation when that is not
     the value itself (e.g. ``None`` meaning "measured").
     """
@@ -282,7 +289,7 @@ TOWER_OPTIONS: tuple[Option, ...] = (
         "decay γ of the trail of recent updates that the step size's hypergradient is taken against; 0 is "
         "the one-step-back hypergradient",
         _check_horizon,
-        legacy=0.0,
+        legacy=lambda group: default_horizon(float(group.get("momentum", 0.0))),
         default_doc="measured, :func:`stepsize_tower.options.default_horizon`: 0.99, or 0 for SGD with momentum",
     ),
     Option(
@@ -305,9 +312,11 @@ TOWER_OPTIONS: tuple[Option, ...] = (
         "(and the largest gradient entry, and the finiteness test) is all-reduced across ranks before the "
         'step size moves, so all ranks learn the same step size. Needs ``granularity="group"``. Does '
         "nothing (no collective call) when ``torch.distributed`` is not initialized. Not needed under "
-        "``DistributedDataParallel``, whose gradients are already all-reduced",
-        _check_bool("sharded"),
-        legacy=False,
+        "``DistributedDataParallel``, whose gradients are already all-reduced. ``None`` detects: FSDP2 "
+        "parameters (DTensors) reduce without being asked, and under ``torch.distributed`` the first step "
+        "compares what each rank holds and warns once when ranks differ (e.g. ZeRO without ``sharded=True``)",
+        _check_sharded_flag,
+        legacy=None,
     ),
 )
 
@@ -421,8 +430,8 @@ def check_group(options: Sequence[Option], group: Mapping[str, Any], defaults: M
 def fill_missing(options: Sequence[Option], group: dict[str, Any]) -> None:
     """Give a group loaded from an older checkpoint the options it lacks, at their legacy values."""
     for option in options:
-        if option.legacy is not _ABSENT:
-            group.setdefault(option.name, option.legacy)
+        if option.legacy is not _ABSENT and option.name not in group:
+            group[option.name] = option.legacy(group) if callable(option.legacy) else option.legacy
 
 
 def args_doc(options: Sequence[Option], init: Callable[..., Any]) -> str:

@@ -31,7 +31,8 @@ class TowerSGD(TowerOptimizer):
         &w_s = w_{s-1} - a_{0,s}\, d_{0,s}, \qquad a_{0,s} = \mathrm{lr} \cdot e^{u_{0,s}}
         \end{aligned}
 
-    With ``depth=0`` this is exactly :class:`torch.optim.SGD`.
+    With ``depth=0`` this is exactly :class:`torch.optim.SGD`; it loads its checkpoints
+    too (momentum buffers carry over, the tower starts at the checkpoint's ``lr``).
 
     Args:
         params: iterable of parameters or parameter groups.
@@ -63,7 +64,7 @@ class TowerSGD(TowerOptimizer):
         maximize: bool = False,
         learn_momentum: bool = False,
         hyper_level: Level | None = None,
-        sharded: bool = False,
+        sharded: bool | None = None,
         fused: bool | None = None,
         growth_search: float | None = None,
     ) -> None:

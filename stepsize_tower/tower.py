@@ -16,7 +16,7 @@ import torch
 from torch import Tensor
 from torch.optim import Optimizer
 
-from . import distributed
+from . import _rank_check, _resume, distributed
 from .bases import BaseRule
 from .engine import step_group
 from .group_state import EFFECTIVE_LR_KEY, TOWER_KEY, levels_of, units_of
@@ -84,6 +84,7 @@ class TowerOptimizer(Optimizer):
             if _TOWER_KEY in group:
                 for key in ("retreated", "peak_gmax"):
                     group[_TOWER_KEY].setdefault(key, torch.zeros_like(group[_TOWER_KEY]["step"]))
+        _resume.normalize_steps(self.state, self.param_groups)
 
     def _make_rule(self) -> BaseRule:
         """The base rule of this optimizer class (rebuilt after unpickling)."""
@@ -136,13 +137,16 @@ class TowerOptimizer(Optimizer):
         """
         out = super().state_dict()
         params = [p for group in self.param_groups for p in group["params"]]
-        for index, st in out["state"].items():
+        for index, st in _resume.param_entries(out["state"], len(params)):
             p = params[index]
             if distributed.is_dtensor(p):  # a new dict: the one torch hands out is the optimizer's own
                 out["state"][index] = {k: distributed.as_param_layout(v, p) for k, v in st.items()}
         return out
 
     def load_state_dict(self, state_dict: dict[str, Any]) -> None:
+        state_dict = _resume.adopt_foreign_groups(
+            state_dict, self.param_groups, type(self).__name__, getattr(self._rule, "decoupled", None)
+        )
         super().load_state_dict(state_dict)
         for group in self.param_groups:
             for p in group["params"]:  # FSDP2: back to this rank's shard as plain tensors
@@ -220,6 +224,7 @@ class TowerOptimizer(Optimizer):
         if closure is not None:
             with torch.enable_grad():
                 loss = closure()
+        _rank_check.check_once(self)
         for group in self.param_groups:
             step_group(self._rule, group, self.state, self.__class__.__name__)
         return loss

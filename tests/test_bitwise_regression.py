@@ -21,7 +21,7 @@ import pytest
 import torch
 from torch import Tensor
 
-from stepsize_tower import _compiled
+from stepsize_tower.bases import compiled as _compiled
 
 
 def _load_cases() -> ModuleType:

@@ -71,8 +71,6 @@ class Case:
 
     def make(self, params: Any, **extra: Any) -> Optimizer:
         kwargs = {**self.info.kwargs, **TOWERS[self.tower]}
-        if self.info.cls is TowerSGD and self.dtype in SIXTEEN_BIT:
-            kwargs["fused"] = False  # torch's CPU fused SGD kernel is broken for 16-bit floats: see below
         return self.info.cls(params, **{**kwargs, **extra})
 
     def make_reference(self, params: Any, **extra: Any) -> Optimizer:
@@ -149,25 +147,12 @@ def roundtrip(obj: Any) -> Any:
 # ---------------------------------------------------------------------------- depth 0 == torch.optim
 
 
-#: Where our for-loop path (fused=False) rounds differently from torch.optim's (foreach=False),
-#: measured over 6 steps: a different order of the same operations.
-FOR_LOOP_ROUNDING = {
-    "sgd_nesterov": "d = g + mu*buf, then p -= a*d; torch: g.add(buf, alpha=mu), p.add_(d, alpha=-lr); "
-    "measured max |diff| 2.4e-7 (f32), 1.1e-16 (f64)",
-    "adam": "p -= (m / denom) * (a / bc1); torch: p.addcdiv_(m, denom, value=-a/bc1); "
-    "measured 6e-8 (f32), 2.8e-17 (f64)",
-    "adamw": "as adam; measured 6e-8 (f32), 2.8e-17 (f64)",
-}
-
-
 def _for_loop_cases() -> list[Any]:
     out = []
     for c in CASES:
         if not c.depth0:
             continue
-        reason = FOR_LOOP_ROUNDING.get(c.info.name)
-        marks = [pytest.mark.xfail(strict=True, raises=AssertionError, reason=reason)] if reason else []
-        out.append(pytest.param(c, id=c.id, marks=marks))
+        out.append(pytest.param(c, id=c.id))
     return out
 
 
@@ -197,15 +182,10 @@ def _assert_depth0_matches(case: Case, ours_kw: dict[str, Any], ref_kw: dict[str
             assert torch.equal(opt.state[p][k], ref_opt.state[q][k]), k
 
 
-DEFAULT_LR_DEFECT = "recorded defect (issue 13 item 6): TowerSGD's default lr is 1e-2, torch.optim.SGD's 1e-3"
-
-
 @pytest.mark.parametrize(
     "cls",
     [
-        pytest.param(
-            TowerSGD, id="sgd", marks=pytest.mark.xfail(strict=True, raises=AssertionError, reason=DEFAULT_LR_DEFECT)
-        ),
+        pytest.param(TowerSGD, id="sgd"),
         pytest.param(TowerAdam, id="adam"),
         pytest.param(TowerAdamW, id="adamw"),
     ],
@@ -228,10 +208,7 @@ def with_known_defects(cases: list[Case], defects: dict[str, str]) -> Any:
 
 @with_known_defects(
     [c for c in CASES if c.depth0],
-    {
-        "sgd": DEFAULT_LR_DEFECT + "; and at the same lr our default is torch's fused kernel, torch's the for-loop "
-        "(1.2e-7 apart in f32 after 8 steps)"
-    },
+    {},
 )
 def test_depth0_with_every_default_equals_torch_optim(case: Case) -> None:
     # reference: torch.optim at its own defaults (lr, fused and foreach left unset) on the same data
@@ -334,10 +311,7 @@ def test_step_runs_the_closure_with_grad_enabled_and_returns_its_loss(case: Case
 
 @with_known_defects(
     [c for c in CASES if c.dtype == torch.float32],
-    {
-        "sgd-depth0": "recorded defect (issue 13 item 6): depth-0 SGD without momentum keeps an empty state "
-        "entry per parameter"
-    },
+    {},
 )
 def test_parameters_without_grad_are_skipped_like_torch_optim(case: Case) -> None:
     # reference: torch.optim skips p.grad is None: the parameter is untouched and gets no state
@@ -433,14 +407,6 @@ def test_lambda_lr_scheduler_is_an_outer_factor(case: Case) -> None:
 # ---------------------------------------------------------------------------- 16-bit SGD
 
 
-@pytest.mark.xfail(
-    strict=True,
-    raises=AssertionError,
-    reason="recorded defect: torch 2.13's CPU fused SGD kernel (torch._fused_sgd_, also behind "
-    "torch.optim.SGD(fused=True)) leaves 99-100 % of 16-bit weights unchanged (measured on 64, 1e3, 1e5 "
-    "entries, bf16 and fp16; which entries move depends on memory alignment), and fused=None routes "
-    "bf16/fp16 TowerSGD into it",
-)
 @pytest.mark.parametrize("dtype", [torch.bfloat16, torch.float16], ids=["bf16", "fp16"])
 @pytest.mark.parametrize("tower", ["depth0", "defaults"])
 def test_sixteen_bit_sgd_default_path_equals_the_for_loop(dtype: torch.dtype, tower: str) -> None:
@@ -522,7 +488,7 @@ def test_non_contiguous_parameters_update_like_torch_optim(case: Case, layout: s
     _run_layout(opt, p, relayout)
     _run_layout(ref_opt, q, ref_relayout)
     assert p.stride() == _layout(layout, case.dtype)[0].stride()  # the layout was kept
-    exact = case.depth0 and case.info.name not in FOR_LOOP_ROUNDING
+    exact = case.depth0
     tol = 0.0 if exact else PATH_TOL[case.dtype]
     torch.testing.assert_close(p.detach(), q.detach(), rtol=tol, atol=tol)
     if not case.depth0:
