@@ -7,7 +7,7 @@ import sys
 from pathlib import Path
 
 from .methods import METHODS, TASK_ORDER
-from .points import build_jobs, read_points
+from .points import build_jobs, near_first_seed_best, read_points
 
 DEFAULT_OUT = Path("experiments/out/field")
 
@@ -20,6 +20,11 @@ def parse_args(argv: list[str] | None = None) -> argparse.Namespace:
     p.add_argument("--out", type=Path, default=DEFAULT_OUT)
     p.add_argument("--quick", action="store_true", help="tiny step budgets, for smoke tests only")
     p.add_argument("--core-only", action="store_true", help="skip the extra grid points (grid ends)")
+    p.add_argument(
+        "--near-best",
+        action="store_true",
+        help="other seeds run only the baseline lrs within a half-decade of the first seed's best",
+    )
     p.add_argument("--report-only", action="store_true", help="no training: report the points already in --out")
     return p.parse_args(argv)
 
@@ -36,6 +41,8 @@ def main(argv: list[str] | None = None) -> None:
         from .sweep import sweep
 
         jobs = build_jobs(args.tasks, args.seeds, args.methods, extras=not args.core_only)
+        if args.near_best:
+            jobs = near_first_seed_best(jobs, read_points(args.out / "points.jsonl"))
         records = sweep(jobs, args.out, args.quick)
     from .report import write_outputs
 

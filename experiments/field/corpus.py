@@ -23,7 +23,7 @@ from pathlib import Path
 import torch
 from torch import Tensor
 
-__all__ = ["UNK", "EOS", "corpus_text", "corpus_digest", "word_ids", "byte_ids"]
+__all__ = ["EOS", "UNK", "byte_ids", "corpus_digest", "corpus_text", "word_ids"]
 
 UNK = "<unk>"
 EOS = "<eos>"

@@ -31,7 +31,7 @@ BASELINE_METHODS = (FIXED, COSINE)
 WARMUP_FRACTION = 0.05
 
 #: Base name → (torch.optim class, tower class).
-BASE_CLASSES: dict[str, tuple[type[torch.optim.Optimizer], type[torch.optim.Optimizer]]] = {
+BASE_CLASSES: dict[str, tuple[Callable[..., torch.optim.Optimizer], Callable[..., torch.optim.Optimizer]]] = {
     "adam": (torch.optim.Adam, TowerAdam),
     "adamw": (torch.optim.AdamW, TowerAdamW),
     "sgd": (torch.optim.SGD, TowerSGD),
@@ -127,3 +127,5 @@ GRIDS: dict[str, dict[tuple[str, str], Grid]] = {
 }
 
 TASK_ORDER = ("word_lstm", "char_transformer", "resnet_digits", "lsq_raw")
+#: The expensive tasks (about 1-2 min per run on one shared thread); they run first.
+LM_TASKS = ("word_lstm", "char_transformer")

@@ -8,7 +8,7 @@ from dataclasses import asdict, dataclass
 from pathlib import Path
 from typing import Any
 
-from .methods import GRIDS, TASK_ORDER
+from .methods import GRIDS, LM_TASKS, TASK_ORDER
 
 Record = dict[str, Any]
 
@@ -39,20 +39,54 @@ def _grid_jobs(task: str, seed: int, methods: Sequence[str], part: str) -> list[
     return jobs
 
 
+def _later_priority(job: Job) -> tuple[int, int]:
+    rank = {"fixed": 0, "cosine": 0, "tower": 1 if job.base != "sgd" else 2, "tower_cosine": 3}
+    return (job.seed, rank[job.method])
+
+
 def build_jobs(tasks: Sequence[str], seeds: Sequence[int], methods: Sequence[str], extras: bool) -> list[Job]:
     """Every run, in priority order.
 
     The language models' core grids for the first seed, then the small tasks (all seeds),
-    then the language models' core grids for the other seeds, then every extra point.
+    then the language models' core grids for the other seeds (baselines first, then the
+    Adam-like tower, then the SGD tower, then the tower under the schedule), then every
+    extra point.
     """
-    lms = [t for t in TASK_ORDER if t in tasks and t in ("word_lstm", "char_transformer")]
+    lms = [t for t in TASK_ORDER if t in tasks and t in LM_TASKS]
     small = [t for t in TASK_ORDER if t in tasks and t not in lms]
     jobs = [j for t in lms for j in _grid_jobs(t, seeds[0], methods, "core")]
     jobs += [j for t in small for s in seeds for j in _grid_jobs(t, s, methods, "core")]
-    jobs += [j for s in seeds[1:] for t in lms for j in _grid_jobs(t, s, methods, "core")]
+    later = [j for s in seeds[1:] for t in lms for j in _grid_jobs(t, s, methods, "core")]
+    jobs += sorted(later, key=_later_priority)
     if extras:
         jobs += [j for s in seeds for t in lms + small for j in _grid_jobs(t, s, methods, "extra")]
     return jobs
+
+
+def near_first_seed_best(jobs: list[Job], done: Sequence[Record], factor: float = 3.5) -> list[Job]:
+    """Drop the other seeds' language-model baseline runs far from the first seed's best lr.
+
+    For each language-model task, base and baseline method (fixed, cosine), the first seed's best run (lowest
+    final training loss) picks the lr; the other seeds keep only the grid points within
+    ``factor`` of it (the best and its half-decade neighbours). Tower runs are kept as they are.
+    """
+    seeds = sorted({j.seed for j in jobs})
+    if len(seeds) < 2:
+        return jobs
+    best_lr: dict[tuple[str, str, str], tuple[float, float]] = {}
+    for r in done:
+        if r["seed"] == seeds[0] and r["method"] in ("fixed", "cosine") and r.get("final_loss") is not None:
+            key = (r["task"], r["base"], r["method"])
+            if key not in best_lr or r["final_loss"] < best_lr[key][1]:
+                best_lr[key] = (float(r["lr"]), float(r["final_loss"]))
+
+    def keep(j: Job) -> bool:
+        ref = best_lr.get((j.task, j.base, j.method))
+        if j.seed == seeds[0] or j.task not in LM_TASKS or j.method not in ("fixed", "cosine") or ref is None:
+            return True
+        return max(j.lr / ref[0], ref[0] / j.lr) <= factor
+
+    return [j for j in jobs if keep(j)]
 
 
 def read_points(path: Path) -> list[Record]:

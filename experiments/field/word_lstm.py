@@ -6,9 +6,10 @@ The output layer is PyTorch's adaptive softmax (``nn.AdaptiveLogSoftmaxWithLoss`
 al., ICML 2017): an exact, normalized distribution over all 10 002 tokens, factored into a
 head (200 most frequent tokens + 2 cluster tokens, 64-d) and two tail clusters (16-d and
 4-d). A full 10 002-way softmax costs 0.3 s per step on this machine's single shared thread,
-the adaptive one 0.016 s; it is how large vocabularies are trained on small compute. The token stream is cut into 20 columns; each step takes the next 35 rows
-(truncated back-propagation through time, hidden state carried over and detached),
-clips the gradient norm to 0.25 and steps. The last 10 % of the stream is held out.
+the adaptive one 0.016 s; it is how large vocabularies are trained on small compute.
+The token stream is cut into 20 columns; each step takes the next 35 rows (truncated
+back-propagation through time, hidden state carried over and detached), clips the
+gradient norm to 0.25 and steps. The last 10 % of the stream is held out.
 Loss: nats per token.
 """
 
@@ -47,9 +48,7 @@ class WordLSTM(nn.Module):
         self.decoder = nn.AdaptiveLogSoftmaxWithLoss(EMBED, vocab, CUTOFFS, div_value=DIV_VALUE)
         nn.init.uniform_(self.encoder.weight, -0.1, 0.1)
 
-    def forward(
-        self, x: Tensor, y: Tensor, hidden: tuple[Tensor, Tensor]
-    ) -> tuple[Tensor, tuple[Tensor, Tensor]]:
+    def forward(self, x: Tensor, y: Tensor, hidden: tuple[Tensor, Tensor]) -> tuple[Tensor, tuple[Tensor, Tensor]]:
         out, hidden = self.rnn(self.drop(self.encoder(x)), hidden)
         return self.decoder(self.drop(out).reshape(-1, EMBED), y.reshape(-1)).loss, hidden
 
