@@ -22,8 +22,11 @@ def parse_args(argv: list[str] | None = None) -> argparse.Namespace:
     p.add_argument("--core-only", action="store_true", help="skip the extra grid points (grid ends)")
     p.add_argument(
         "--near-best",
-        action="store_true",
-        help="other seeds run only the baseline lrs within a half-decade of the first seed's best",
+        type=float,
+        default=None,
+        metavar="FACTOR",
+        help="later seeds run only the LM baseline lrs within FACTOR of the first seed's best "
+        "(1: the best lr alone; 3.5: it and its half-decade neighbours)",
     )
     p.add_argument("--report-only", action="store_true", help="no training: report the points already in --out")
     return p.parse_args(argv)
@@ -41,8 +44,8 @@ def main(argv: list[str] | None = None) -> None:
         from .sweep import sweep
 
         jobs = build_jobs(args.tasks, args.seeds, args.methods, extras=not args.core_only)
-        if args.near_best:
-            jobs = near_first_seed_best(jobs, read_points(args.out / "points.jsonl"))
+        if args.near_best is not None:
+            jobs = near_first_seed_best(jobs, read_points(args.out / "points.jsonl"), args.near_best)
         records = sweep(jobs, args.out, args.quick)
     from .report import write_outputs
 

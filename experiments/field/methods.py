@@ -95,12 +95,12 @@ SGD_TOWER = _decades(-3, 3)
 #: Per task: (base, method) → grid. Core points run first (for every seed), extras after.
 GRIDS: dict[str, dict[tuple[str, str], Grid]] = {
     "word_lstm": {
-        ("adam", FIXED): Grid((3e-4, 1e-3, 3e-3, 1e-2), (1e-5, 1e-4, 3e-2, 1e-1, 1.0)),
-        ("adam", COSINE): Grid((1e-3, 3e-3, 1e-2), (3e-4, 3e-2)),
+        ("adam", FIXED): Grid((3e-4, 1e-3, 3e-3, 1e-2, 3e-2), (1e-5, 1e-4, 1e-1, 1.0)),
+        ("adam", COSINE): Grid((1e-3, 3e-3, 1e-2, 3e-2), (3e-4,)),
         ("sgd", FIXED): Grid((3.0, 10.0, 30.0, 100.0), (1e-3, 1e-2, 1e-1, 1.0, 1e3)),
         ("adam", TOWER): Grid(ADAM_TOWER),
         ("sgd", TOWER): Grid(SGD_TOWER),
-        ("adam", TOWER_COSINE): Grid((), (1e-4, 1e-2, 1.0)),
+        ("adam", TOWER_COSINE): Grid((1e-4, 1e-2, 1.0)),
     },
     "char_transformer": {
         ("adamw", FIXED): Grid((3e-4, 1e-3, 3e-3, 1e-2), (1e-5, 1e-4, 3e-2, 1e-1, 1.0)),

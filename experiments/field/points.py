@@ -84,7 +84,7 @@ def near_first_seed_best(jobs: list[Job], done: Sequence[Record], factor: float 
         ref = best_lr.get((j.task, j.base, j.method))
         if j.seed == seeds[0] or j.task not in LM_TASKS or j.method not in ("fixed", "cosine") or ref is None:
             return True
-        return max(j.lr / ref[0], ref[0] / j.lr) <= factor
+        return max(j.lr / ref[0], ref[0] / j.lr) <= factor * (1 + 1e-9)
 
     return [j for j in jobs if keep(j)]
 
