@@ -22,7 +22,8 @@ from .judge import (
 from .methods import COSINE, METHODS, TASK_ORDER, TOWER, TOWER_METHODS
 from .points import Record
 
-TRAJECTORY_STEPS = (0, 50, 100, 200, 400, 700)
+#: Where the trajectory table samples a run, as fractions of its steps.
+TRAJECTORY_FRACTIONS = (0.0, 0.05, 0.1, 0.2, 0.4, 0.7)
 
 
 def _fmt(x: float | None, digits: int = 3) -> str:
@@ -143,19 +144,24 @@ def loss_grid(records: Sequence[Record]) -> list[str]:
     return out
 
 
-def _a0_at(r: Record, step: int) -> float:
-    traj = {int(s): float(a) for s, a in r["trajectory"]}
-    return traj.get(step, math.nan)
+def _a0_at(r: Record, fraction: float) -> float:
+    """The sampled step size nearest to ``fraction`` of the run's steps."""
+    target = fraction * int(r["steps"])
+    _step, a0 = min(((int(s), float(a)) for s, a in r["trajectory"]), key=lambda sa: abs(sa[0] - target))
+    return a0
 
 
 def trajectory_table(records: Sequence[Record]) -> list[str]:
-    out = ["## Tower step size a0 along training (first seed run; max = largest sample and its step)", ""]
+    out = [
+        "## Tower step size a0 along training, at fractions of the run (first seed; max = largest sample, its step)",
+        "",
+    ]
     out.append(
         "| task | base | method | typed lr | "
-        + " | ".join(f"step {s}" for s in TRAJECTORY_STEPS)
+        + " | ".join(f"{f:.0%}" for f in TRAJECTORY_FRACTIONS)
         + " | final | max (step) | retreats |"
     )
-    out.append("|---|---|---|---|" + "---|" * len(TRAJECTORY_STEPS) + "---|---|---|")
+    out.append("|---|---|---|---|" + "---|" * len(TRAJECTORY_FRACTIONS) + "---|---|---|")
     for task, base in _pairs(records):
         for method in TOWER_METHODS:
             rs = _select(records, task=task, base=base, method=method)
@@ -166,7 +172,7 @@ def trajectory_table(records: Sequence[Record]) -> list[str]:
                 step, peak = max(((int(s), float(a)) for s, a in r["trajectory"]), key=lambda sa: sa[1])
                 out.append(
                     f"| {task} | {base} | {method} | {_lr(r['lr'])} | "
-                    + " | ".join(_fmt(_a0_at(r, s), 2) for s in TRAJECTORY_STEPS)
+                    + " | ".join(_fmt(_a0_at(r, f), 2) for f in TRAJECTORY_FRACTIONS)
                     + f" | {_fmt(r['final_step_size'], 2)} | {_fmt(peak, 2)} ({step}) | {r['retreats']} |"
                 )
     return [*out, ""]
