@@ -4,7 +4,7 @@ VENV   ?= .venv
 PY     := $(VENV)/bin/python
 STAMP  := $(VENV)/.installed
 
-.PHONY: venv extras demo demo-script test test-all lint typecheck bench sensitivity clean
+.PHONY: venv extras demo demo-script test test-all lint typecheck bench sensitivity field clean
 
 $(STAMP): pyproject.toml
 	$(PYTHON) -m venv $(VENV)
@@ -46,6 +46,11 @@ bench: $(STAMP)
 
 sensitivity: $(STAMP)
 	$(PY) experiments/sensitivity.py --seeds 0 1 2 --tasks logreg_cancer lsq_raw mlp_digits cnn_digits char_gru
+
+# Field benchmark (experiments/field/): four practitioner-style tasks, 2 seeds, one thread;
+# several hours on a shared 2-core machine; resumable (finished runs are skipped).
+field: $(STAMP)
+	$(PY) -m experiments.field --seeds 0 1
 
 clean:
 	rm -rf $(VENV) experiments/out runs *.egg-info
