@@ -137,6 +137,12 @@ MUTATIONS: list[Mutation] = [
         (('count = float(ts["step"])', 'count = float(ts["step"]) + 1'),),
         (HYPERGRAD, "-k", "like_torch_optim"),
     ),
+    Mutation(
+        "level_bias_correction_off_by_one_tensor_ops",
+        "levels/tensor_path.py",
+        (('exp_avg, ts["exp_avg_sq"], ts["step"])', 'exp_avg, ts["exp_avg_sq"], ts["step"] + 1)'),),
+        ("tests/test_level_math_paths.py",),
+    ),
     # --- distributed: a rank holding no gradient skips the collective (the others wait on it)
     Mutation(
         "rank_without_gradients_skips_the_reduction",
