@@ -28,19 +28,24 @@ MUTATIONS: list[Mutation] = [
     # --- hypergradient probes
     Mutation(
         "adam_probe_drops_eps",
-        "adam.py",
-        (("den = v.sqrt().div_(bc2s_prev.to(v.dtype)).add_(eps)", "den = v.sqrt().div_(bc2s_prev.to(v.dtype))"),),
+        "bases/adam.py",
+        (
+            (
+                "adam_direction(m, v, bc2s_prev.to(v.dtype), eps)",
+                "adam_direction(m, v, bc2s_prev.to(v.dtype), 0.0)",
+            ),
+        ),
         (HYPERGRAD, "-k", "adam-adam or adamw-adam or adam_l2-sgd"),
     ),
     Mutation(
         "sgd_probe_drops_l2",
-        "sgd.py",
-        (("g = _chunks.flat(_grad(group, p, grad))", 'g = _chunks.flat(-grad if group["maximize"] else grad)'),),
+        "bases/sgd.py",
+        (("g = chunks.flat(_grad(group, p, grad))", 'g = chunks.flat(-grad if group["maximize"] else grad)'),),
         (HYPERGRAD, "-k", "sgd_l2 or sgd_nesterov_l2"),
     ),
     Mutation(
         "sgd_fused_previous_gradient_drops_l2",
-        "sgd.py",
+        "bases/sgd.py",
         (
             (
                 'keep(st, "prev_grad", _grad(group, p, grad))',
@@ -52,7 +57,7 @@ MUTATIONS: list[Mutation] = [
     # --- retreats
     Mutation(
         "secant_factor_minus_inverse_rho",
-        "tower.py",
+        "safeguards.py",
         (
             ("torch.where(secant, 1.0 / (1.0 - rho),", "torch.where(secant, -1.0 / rho,"),
             ("factor = 1.0 / (1.0 - rho)", "factor = -1.0 / rho"),
@@ -61,25 +66,25 @@ MUTATIONS: list[Mutation] = [
     ),
     Mutation(
         "start_up_window_off_by_one",
-        "tower.py",
+        "plan.py",
         (("steps_taken < RETREAT_WINDOW", "steps_taken <= RETREAT_WINDOW"),),
         (PINNED, "-k", "first_ten"),
     ),
     Mutation(
         "retreat_keeps_the_trail",
-        "tower.py",
-        (('st["update_ema"].zero_()', "pass"),),
+        "safeguards.py",
+        (("trail.clear(st)  # the trail held the unstable steps", "pass"),),
         (PINNED, "-k", "trail"),
     ),
     Mutation(
         "retreat_leaves_previous_step_size",
-        "tower.py",
+        "safeguards.py",
         (('ts["prev_step"][:, 0] = a_new', "pass"),),
         (PINNED, "-k", "secant"),
     ),
     Mutation(
         "adamw_retreat_decays_at_the_old_step_size",
-        "adam.py",
+        "bases/adam.py",
         (
             (
                 "p.copy_(w_before * (1 - a_new * wd).to(p.dtype) - a_new.to(p.dtype) * u)",
@@ -90,52 +95,58 @@ MUTATIONS: list[Mutation] = [
     ),
     Mutation(
         "nesterov_retreat_along_the_buffer",
-        "sgd.py",
+        "bases/sgd.py",
         (('d = state["prev_grad"] + mu * state["momentum_buffer"]', 'd = state["momentum_buffer"]'),),
         (PINNED, "-k", "secant"),
     ),
     # --- bounds by construction
     Mutation(
         "log_step_bound_69_to_20",
-        "levels.py",
+        "levels/spec.py",
         (("LOG_STEP_BOUND = 69.0", "LOG_STEP_BOUND = 20.0"),),
         (PINNED, "-k", "bound"),
     ),
     Mutation(
         "log_change_clip_1_to_3",
-        "levels.py",
+        "levels/spec.py",
         (("MAX_LOG_CHANGE = 1.0", "MAX_LOG_CHANGE = 3.0"),),
         (PINNED, "-k", "at_most_one"),
     ),
     # --- level arithmetic
     Mutation(
         "hyper_level_bias_correction_off_by_one",
-        "hyper.py",
+        "hyperparams.py",
         (('count = ts["hyper_count"]', 'count = ts["hyper_count"] + 1'),),
         (PINNED, "-k", "momentum"),
     ),
     Mutation(
         "growth_search_boost_exponent_off_by_one_host",
-        "levels.py",
-        (("searched[unit] * _LOG_SEARCH_SPEEDUP", "(searched[unit] + 1) * _LOG_SEARCH_SPEEDUP"),),
+        "levels/host_path.py",
+        (("min(searched * LOG_SPEEDUP, MAX_LOG_BOOST)", "min((searched + 1) * LOG_SPEEDUP, MAX_LOG_BOOST)"),),
         (PINNED, "-k", "growth_search"),
     ),
     Mutation(
         "growth_search_boost_exponent_off_by_one_tensor_ops",
-        "levels.py",
-        (("searched.clamp_min(0) * _LOG_SEARCH_SPEEDUP", "(searched.clamp_min(0) + 1) * _LOG_SEARCH_SPEEDUP"),),
+        "levels/tensor_path.py",
+        (("searched.clamp_min(0) * LOG_SPEEDUP", "(searched.clamp_min(0) + 1) * LOG_SPEEDUP"),),
         (PINNED, "-k", "growth_search"),
     ),
     Mutation(
         "level_bias_correction_off_by_one_host",
-        "levels.py",
+        "levels/host_path.py",
         (('count = float(ts["step"])', 'count = float(ts["step"]) + 1'),),
         (HYPERGRAD, "-k", "like_torch_optim"),
+    ),
+    Mutation(
+        "level_bias_correction_off_by_one_tensor_ops",
+        "levels/tensor_path.py",
+        (('exp_avg, ts["exp_avg_sq"], ts["step"])', 'exp_avg, ts["exp_avg_sq"], ts["step"] + 1)'),),
+        ("tests/test_level_math_paths.py",),
     ),
     # --- distributed: a rank holding no gradient skips the collective (the others wait on it)
     Mutation(
         "rank_without_gradients_skips_the_reduction",
-        "tower.py",
+        "engine.py",
         (("if not indexed and not sharded:", "if not indexed:"),),
         ("tests/test_distributed.py::test_zero_sharded_matches_single_process[adam]",),
         slow=True,

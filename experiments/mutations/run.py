@@ -111,7 +111,7 @@ def main() -> int:
         parser.error(f"unknown mutation(s) {sorted(unknown)}; see --list")
     if args.list:
         for m in MUTATIONS:
-            print(f"{m.name:52s} stepsize_tower/{m.file:10s} {' '.join(m.tests)}{'  [slow]' if m.slow else ''}")
+            print(f"{m.name:52s} stepsize_tower/{m.file:22s} {' '.join(m.tests)}{'  [slow]' if m.slow else ''}")
         return 0
     results = []
     for m in chosen:
