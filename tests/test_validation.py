@@ -40,7 +40,7 @@ INVALID: list[tuple[str, tuple[str, ...], str, Any, str]] = [
     ("betas range", ("adam",), "betas", (1.0, 0.9), r"betas.*\[0, 1\)"),
     ("betas mixed", ("adam", "adamw"), "betas", (0.9, torch.tensor(0.999)), r"betas.*both floats or both tensors"),
     ("compiled", ("adam",), "compiled", 1, r"compiled.*1.*True or False"),
-    ("sharded", ("sgd", "adam"), "sharded", "yes", r"sharded.*'yes'.*True or False"),
+    ("sharded", ("sgd", "adam"), "sharded", "yes", r"sharded.*'yes'.*True, False or None"),
     ("maximize", ("sgd", "adam"), "maximize", "no", r"maximize.*'no'.*True or False"),
     ("nesterov", ("sgd",), "nesterov", 1, r"nesterov.*1.*True or False"),
     ("learn_momentum", ("sgd",), "learn_momentum", "on", r"learn_momentum.*'on'.*True or False"),
