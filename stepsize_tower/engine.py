@@ -7,8 +7,9 @@
                the largest gradient entry, finiteness (reads only)        (measure.measure)
     complete   sum the partial values over the ranks of a sharded group  (measure.complete_across_ranks)
     decide     anything non-finite -> skip: nothing changes, skipped += 1;
-               the loss rose (start-up test) or the gradient blew up
-               (SGD's blow-up guard) -> retreat, retreats += 1             (safeguards.decide / take_back)
+               the loss rose (start-up test; under clipping, the direction
+               reversed) or the gradient blew up (SGD's blow-up guard)
+               -> retreat, retreats += 1                                  (safeguards.decide / take_back, clipping)
     learn      learned momentum / betas (hyperparams.hyperparam_step), then the levels,
                top-down, with the growth search -> a_{0,s} (levels.tower_step),
                cut by the first-step limit on the first step             (safeguards.limit_first_step)
@@ -26,8 +27,9 @@ from typing import Any
 import torch
 from torch import Tensor
 
-from . import distributed, trail
+from . import clipping, distributed, trail
 from .bases import BaseRule, CompiledTrail
+from .clipping import ClipSignal
 from .group_state import TOWER_KEY, new_tower_state, publish_effective_lr
 from .hyperparams import hyperparam_step
 from .levels import Level, tower_step
@@ -61,7 +63,8 @@ def step_group(rule: BaseRule, group: dict[str, Any], state: Any, owner: str) ->
         m = completed
     update_dot = _update_dot(plan, m)
     finite = _all_finite(m, update_dot)
-    decision = decide(ts, finite, m.prev_dot, m.gmax, plan.startup_test)
+    clip = _clip_signal(m)
+    decision = decide(ts, finite, m.prev_dot, m.gmax if plan.blowup_guard else None, plan.startup_test, clip)
     if decision.skip:
         ts["skipped"] += 1
         return
@@ -69,6 +72,8 @@ def step_group(rule: BaseRule, group: dict[str, Any], state: Any, owner: str) ->
         take_back(rule, group, ts, batch.params, batch.states, plan.unit_of, plan.a_prev, decision.retreat_factor)
         return
     a0 = learn(rule, group, ts, plan, batch, m, update_dot)
+    if clip is not None:
+        clipping.remember(ts, clip)
     apply(rule, group, ts.get("hyper_value"), plan, batch, a0)
 
 
@@ -87,6 +92,13 @@ def _batch(group: dict[str, Any], state: Any, sharded: bool, owner: str) -> Batc
             raise RuntimeError(f"{owner} does not support complex parameters; optimize torch.view_as_real(p) instead")
     params, grads = distributed.local_parts([p for _, p in indexed], sharded, owner)
     return Batch(params, grads, [state[p] for _, p in indexed], [i for i, _ in indexed])
+
+
+def _clip_signal(m: Measurement) -> ClipSignal | None:
+    """This step's gradient norm and largest entry, when the start-up window measured them."""
+    if m.grad_norm_sq is None or m.gmax is None:
+        return None
+    return ClipSignal(m.grad_norm_sq, m.gmax)
 
 
 def _update_dot(plan: Plan, m: Measurement) -> Tensor:
@@ -125,7 +137,7 @@ def learn(
         a0 = limit_first_step(ts, a0, float(limit), _typical_scale(group, plan, batch, a0))
     publish_effective_lr(group, a0)
     ts["prev_slope"].copy_(m.slope)
-    if m.gmax is not None:
+    if m.gmax is not None and plan.blowup_guard:
         torch.maximum(ts["peak_gmax"], m.gmax, out=ts["peak_gmax"])
     ts["step"] += 1
     return a0

@@ -28,8 +28,10 @@ class Measurement:
     trail_dot: Tensor | None
     #: ``<g_s, T_j>`` [H] for the learned hyperparameters, else None.
     tangent_dots: Tensor | None
-    #: The largest absolute gradient entry (SGD's blow-up guard), else None.
+    #: The largest absolute gradient entry (SGD's blow-up guard; the first two steps), else None.
     gmax: Tensor | None
+    #: ``||g_s||^2`` over the group (the first two steps: clipping detection), else None.
+    grad_norm_sq: Tensor | None
     #: Whether the gradients are finite, where no dot product above has seen them.
     finite: Tensor
 
@@ -67,13 +69,14 @@ def measure(rule: BaseRule, group: dict[str, Any], ts: dict[str, Tensor], plan: 
                 else torch.zeros_like(ts["hyper_value"])
             )
     trail_dot = _trail_dot(rule, group, plan, batch, device) if plan.horizon > 0 and plan.levels else None
-    gmax = _grad_max(batch.grads) if plan.blowup_guard else None
+    gmax = _grad_max(batch.grads) if plan.blowup_guard or plan.clip_check else None
+    norm_sq = _grad_norm_sq(batch.grads, device) if plan.clip_check else None
     # Every dot product contains a gradient, and inf * 0 = nan: a non-finite gradient shows in
     # them, except on a step where no dot product saw the gradient (no trail yet).
     finite = torch.isfinite(gmax) if gmax is not None else torch.ones((), dtype=torch.bool, device=device)
     if not (plan.exact or plan.learns_hyperparams) and not trail.has_trail(batch.states):
         finite = finite & grads_finite(batch.grads)
-    return Measurement(prev_dot, slope, trail_dot, tangent_dots, gmax, finite)
+    return Measurement(prev_dot, slope, trail_dot, tangent_dots, gmax, norm_sq, finite)
 
 
 def _trail_dot(rule: BaseRule, group: dict[str, Any], plan: Plan, batch: Batch, device: torch.device) -> Tensor:
@@ -95,7 +98,7 @@ def _trail_dot(rule: BaseRule, group: dict[str, Any], plan: Plan, batch: Batch, 
 
 def complete_across_ranks(m: Measurement, group: dict[str, Any], count: int) -> Measurement | None:
     """The sums over every rank of a sharded group (one collective); None when no rank had a gradient."""
-    sums = [m.prev_dot, m.slope, m.trail_dot, m.tangent_dots]
+    sums = [m.prev_dot, m.slope, m.trail_dot, m.tangent_dots, m.grad_norm_sq]
     total, finite, reduced, gmax = distributed.reduce_across_ranks(
         count, m.finite, sums, m.gmax, distributed.shard_group(group["params"])
     )
@@ -104,7 +107,14 @@ def complete_across_ranks(m: Measurement, group: dict[str, Any], count: int) -> 
     prev_dot, slope = reduced[0], reduced[1]
     assert prev_dot is not None and slope is not None
     return replace(
-        m, prev_dot=prev_dot, slope=slope, trail_dot=reduced[2], tangent_dots=reduced[3], gmax=gmax, finite=finite
+        m,
+        prev_dot=prev_dot,
+        slope=slope,
+        trail_dot=reduced[2],
+        tangent_dots=reduced[3],
+        grad_norm_sq=reduced[4],
+        gmax=gmax,
+        finite=finite,
     )
 
 
@@ -117,6 +127,14 @@ def _grad_max(grads: list[Tensor]) -> Tensor:
     if not extremes:  # no entries (or, on a rank holding none of a sharded group, no tensors)
         return torch.zeros((), dtype=torch.float64, device=grads[0].device if grads else None)
     return torch.stack(extremes).abs().max().double()
+
+
+def _grad_norm_sq(grads: list[Tensor], device: torch.device) -> Tensor:
+    """``||g||^2`` over all the gradients (float64, summed over tensors)."""
+    if not grads:
+        return torch.zeros((), dtype=torch.float64, device=device)
+    norms = torch.stack([torch.linalg.vector_norm(g, dtype=torch.float64) for g in grads])
+    return norms.square().sum().to(device)
 
 
 def grads_finite(grads: list[Tensor]) -> Tensor:

@@ -48,6 +48,9 @@ class Plan:
     search_max_move: float | None
     #: The start-up test runs (the loss rose along the last step: retreat).
     startup_test: bool
+    #: The first step is checked for an overshoot hidden by clipping (:mod:`stepsize_tower.clipping`):
+    #: its gradient is measured on steps 0 and 1, the test runs on step 1 (and its retries).
+    clip_check: bool
     #: SGD's blow-up guard runs (the largest gradient entry blew up: retreat).
     blowup_guard: bool
     #: The one-step dot products ``<g_s, d_{0,s-1}>`` are needed (no trail, or a test uses them).
@@ -84,6 +87,7 @@ def make_plan(group: dict[str, Any], ts: dict[str, Tensor], rule: BaseRule, batc
         searching=searching,
         search_max_move=search_max_move,
         startup_test=startup_test,
+        clip_check=startup_test and steps_taken <= 1,
         blowup_guard=bool(group["retreat"]) and bool(levels) and not rule.normalized,
         exact=horizon == 0 or startup_test or searching,
     )

@@ -46,8 +46,9 @@ import torch
 from torch import Tensor
 from torch import distributed as dist
 
-from . import trail
+from . import clipping, trail
 from .bases import BaseRule, chunks
+from .clipping import ClipSignal
 from .group_state import publish_effective_lr
 
 __all__ = [
@@ -97,38 +98,36 @@ def decide(
     prev_dot: Tensor,
     gmax: Tensor | None,
     startup_test: bool,
+    clip: ClipSignal | None = None,
 ) -> Decision:
     """Skip, retreat (with its factor on ``a_{0,s-1}``) or take the step; one host read.
 
     ``finite``: every measured value is finite; ``prev_dot``: ``<g_s, d_{0,s-1}>`` per unit;
-    ``gmax``: the largest gradient entry when the blow-up guard runs.
+    ``gmax``: the largest gradient entry when the blow-up guard runs; ``clip``: this step's
+    gradient norm and largest entry during the start-up window (:mod:`stepsize_tower.clipping`).
     """
-    retreat: Tensor | None = None
-    secant: Tensor | None = None
-    rho: Tensor | None = None
-    blowup_ratio: Tensor | None = None
+    tests: list[tuple[Tensor, Tensor]] = []  # (fires, factor on a_{0,s-1}), first firing wins
     if startup_test:  # the loss rose along the last step (secant ratio rho)
         prev_slope = ts["prev_slope"].sum()
         rho = prev_dot.sum() / prev_slope
         threshold = torch.where(ts["retreated"].bool(), -RETREAT_AGAIN_RATIO, -1.0)
-        retreat = secant = (prev_slope > 0) & (rho < threshold)
+        tests.append(((prev_slope > 0) & (rho < threshold), 1.0 / (1.0 - rho)))
+        if clip is not None:  # clipped gradients hide the rise: the direction reversed
+            tests.append(clipping.reversal(ts, rho, prev_slope, clip))
     if gmax is not None:  # any time (SGD): the largest gradient entry grew RETREAT_BLOWUP x
         blowup_ratio = gmax / ts["peak_gmax"]
-        blowup = (ts["peak_gmax"] > 0) & (blowup_ratio > RETREAT_BLOWUP)
-        retreat = blowup if retreat is None else retreat | blowup
-    if retreat is None:
+        tests.append(((ts["peak_gmax"] > 0) & (blowup_ratio > RETREAT_BLOWUP), 1.0 / (1.0 + blowup_ratio)))
+    if not tests:
         return Decision(skip=not bool(finite), retreat_factor=None)
+    retreat = tests[0][0]
+    for fires, _ in tests[1:]:
+        retreat = retreat | fires
     skip_now, retreat_now = torch.stack([~finite, retreat]).tolist()
     if skip_now or not retreat_now:
         return Decision(skip=bool(skip_now), retreat_factor=None)
-    # The secant minimizer along the step, or the blow-up guard's cut (whichever test fired).
-    if secant is not None and rho is not None and blowup_ratio is not None:
-        factor = torch.where(secant, 1.0 / (1.0 - rho), 1.0 / (1.0 + blowup_ratio))
-    elif rho is not None:
-        factor = 1.0 / (1.0 - rho)
-    else:
-        assert blowup_ratio is not None
-        factor = 1.0 / (1.0 + blowup_ratio)
+    factor = tests[-1][1]
+    for fires, candidate in reversed(tests[:-1]):
+        factor = torch.where(fires, candidate, factor)
     return Decision(skip=False, retreat_factor=factor)
 
 
