@@ -108,9 +108,9 @@ def missing_horizon(group: Mapping[str, Any]) -> float:
     """The horizon a group saved without one gets: the class's measured default for that group.
 
     SGD groups carry ``momentum`` (default 0 with momentum, :data:`DEFAULT_HORIZON` without);
-    Adam groups do not (:data:`DEFAULT_HORIZON`).
+    Adam groups carry ``betas`` (:data:`DEFAULT_ADAM_HORIZON`).
     """
-    return default_horizon(float(group.get("momentum", 0.0)))
+    return default_horizon(float(group.get("momentum", 0.0)), adam_like="betas" in group)
 
 
 def normalize_steps(state: Mapping[Any, Any], groups: Sequence[Mapping[str, Any]]) -> None:

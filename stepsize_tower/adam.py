@@ -11,8 +11,8 @@ from .bases.adam import AdamRule
 from .levels import Level
 from .options import (
     ADAM_OPTIONS,
+    DEFAULT_ADAM_HORIZON,
     DEFAULT_FIRST_STEP_LIMIT,
-    DEFAULT_HORIZON,
     DEFAULT_HYPER_LEVEL,
     TOWER_OPTIONS,
     resolve_levels,
@@ -96,7 +96,7 @@ class TowerAdam(TowerOptimizer):
             "levels": resolve_levels(depth, levels),
             "granularity": granularity,
             "retreat": retreat,
-            "horizon": DEFAULT_HORIZON if horizon is None else horizon,
+            "horizon": DEFAULT_ADAM_HORIZON if horizon is None else horizon,
             "learn_betas": learn_betas,
             "hyper_level": hyper_level or DEFAULT_HYPER_LEVEL,
             "sharded": sharded,

@@ -77,7 +77,7 @@ def _groups(model: nn.Module) -> list[dict[str, Any]]:
 
 
 _OPTIMIZERS: dict[str, tuple[type, dict[str, Any]]] = {
-    # Adam: normalized, default horizon 0.99 (the trail of updates after the retreat window).
+    # Adam: normalized, default horizon 0.999 (the trail of updates after the retreat window).
     "adam": (TowerAdam, {"lr": 1e-2}),
     # SGD with momentum: horizon 0, the growth guard on (the largest gradient entry is reduced too).
     "sgd": (TowerSGD, {"lr": 1e-2, "momentum": 0.9}),

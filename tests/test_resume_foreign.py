@@ -20,7 +20,7 @@ import torch
 from torch import Tensor
 
 from stepsize_tower import TowerAdam, TowerAdamW, TowerSGD
-from stepsize_tower.options import DEFAULT_HORIZON
+from stepsize_tower.options import DEFAULT_ADAM_HORIZON, DEFAULT_HORIZON
 
 N_IN, N_HIDDEN, N_OUT, BATCH = 5, 7, 3, 8
 BEFORE, AFTER = 8, 8  # steps before the checkpoint, steps after it
@@ -184,7 +184,7 @@ def _drop_group_key(ckpt: Any, key: str) -> Any:
 @pytest.mark.parametrize(
     ("make", "expected"),
     [
-        (lambda ps: TowerAdam(ps, lr=1e-2), [DEFAULT_HORIZON]),
+        (lambda ps: TowerAdam(ps, lr=1e-2), [DEFAULT_ADAM_HORIZON]),
         # Per group: SGD without momentum 0.99, with momentum 0 (defaults.default_horizon). The
         # run typed the second group's horizon: a group's momentum override alone keeps the
         # constructor's horizon (computed from the constructor's momentum).
