@@ -82,7 +82,12 @@ def test_scenarios_exercise_retreats_skips_and_growth() -> None:
     def counter(scenario: str, key: str) -> float:
         return sum(float(v) for k, v in RECORDED[scenario].items() if k.endswith(f"/tower/{key}"))
 
-    for scenario in ("sgd@large", "adam@large", "adam_no_first_step_limit@large", "sgd_tensor@large"):
+    for scenario in (
+        "sgd@large",
+        "adamw_first_step_limit_2@large",
+        "adam_no_first_step_limit@large",
+        "sgd_tensor@large",
+    ):
         assert counter(scenario, "retreats") > 0, scenario
     assert counter("adam", "skipped") == 1  # the infinite gradient's step, in the first group
     searched = RECORDED["sgd_growth_search@small"]["param_groups/0/tower/search"]

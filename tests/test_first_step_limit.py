@@ -107,12 +107,13 @@ def test_all_zero_weights_carry_no_scale_and_are_not_limited() -> None:
 def test_tensor_granularity_limits_each_tensor_by_its_own_size() -> None:
     model = _model()
     rms = [float(np.sqrt(np.mean(p.detach().numpy() ** 2))) for p in model.parameters()]
-    opt = TowerAdam(model.parameters(), lr=1.0, granularity="tensor")
+    lr = DEFAULT_FIRST_STEP_LIMIT * float(np.sqrt(min(rms) * max(rms)))  # between the smallest and largest cap
+    opt = TowerAdam(model.parameters(), lr=lr, granularity="tensor")
     _first_step(model, opt)
     got = opt.step_size_tensors()[0][:, 0].tolist()
-    want = [min(1.0, DEFAULT_FIRST_STEP_LIMIT * r) for r in rms]
+    want = [min(lr, DEFAULT_FIRST_STEP_LIMIT * r) for r in rms]
     assert got == pytest.approx(want, rel=1e-12)
-    assert any(g < 1.0 for g in got) and any(g == 1.0 for g in got)  # the wide table is not cut
+    assert any(g < lr for g in got) and any(g == lr for g in got)  # the wide table is not cut
 
 
 def test_limit_applies_once_and_the_levels_take_over() -> None:

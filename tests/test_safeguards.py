@@ -48,8 +48,10 @@ def test_adam_started_1e3_to_1e4_times_too_large_recovers_on_a_network(too_large
     tuned_model, tuned_loss = network_task()
     tuned = _train(torch.optim.Adam(tuned_model.parameters(), lr=1e-2), tuned_loss, 300)  # reference: torch.optim
     opt = TowerAdam(model.parameters(), lr=too_large)
-    final = _train(opt, loss, 300)
-    assert opt.retreats() >= 1
+    _train(opt, loss, 1)
+    first = opt.step_sizes()[0][0]
+    final = _train(opt, loss, 299)
+    assert opt.retreats() >= 1 or first < 0.01 * too_large  # a safeguard acted: retreat or first-step limit
     assert all(torch.isfinite(p).all() for p in model.parameters())
     assert math.isfinite(final)
     assert final <= max(1.25 * tuned, tuned + 0.01)  # the sensitivity benchmark's "good" rule
