@@ -323,7 +323,8 @@ OPPOSING = [
     ("sgd_adam_level", lambda p: TowerSGD(p, lr=1.5, retreat=False, horizon=0)),
     ("sgd_sgd_level", lambda p: TowerSGD(p, lr=1.5, retreat=False, horizon=0, levels=[Level("sgd", lr=0.1)])),
     ("sgd_depth2", lambda p: TowerSGD(p, lr=1.5, retreat=False, horizon=0, depth=2)),
-    ("adam_overshooting", lambda p: TowerAdam(p, lr=3.0, retreat=False, horizon=0)),
+    # the first-step limit off too: it would start below the overshoot (0.1 x |w0|)
+    ("adam_overshooting", lambda p: TowerAdam(p, lr=3.0, retreat=False, horizon=0, first_step_limit=None)),
 ]
 
 
