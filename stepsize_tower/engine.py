@@ -2,20 +2,21 @@
 
 ::
 
-    plan       the step's flags, once                                    (plan.make_plan)
+    plan       the step's flags, once, from the host's clock (no read)   (plan.make_plan, host_clock)
     measure    <g_s, d_{0,s-1}>, <g_s, d_{0,s}>, <g_s, E>, <g_s, T_j>,
                the largest gradient entry, finiteness (reads only)        (measure.measure)
     complete   sum the partial values over the ranks of a sharded group  (measure.complete_across_ranks)
     decide     anything non-finite -> skip: nothing changes, skipped += 1;
                the loss rose (start-up test; under clipping, the direction
                reversed) or the gradient blew up (SGD's blow-up guard)
-               -> retreat, retreats += 1                                  (safeguards.decide / take_back, clipping)
+               -> retreat, retreats += 1          (safeguards.retreat_test / take_back, clipping)
     learn      learned momentum / betas (hyperparams.hyperparam_step), then the levels,
                top-down, with the growth search -> a_{0,s} (levels.tower_step),
                cut by the first-step limit on the first step             (safeguards.limit_first_step)
     apply      w_s = w_{s-1} - a_{0,s} d_{0,s} (the base's update), folded into the trail  (trail)
 
-Host reads: the step count and one skip/retreat flag per group; all learned values stay tensors.
+Host reads: one per group and step, the skip/retreat flags (which also keep the host's clock
+of the step count); all learned values stay tensors.
 A group with nothing to learn (depth 0, no learned hyperparameters) is the base optimizer
 itself, with non-finite steps skipped (:func:`plain_step`).
 """
@@ -31,11 +32,12 @@ from . import clipping, distributed, trail
 from .bases import BaseRule, CompiledTrail
 from .clipping import ClipSignal
 from .group_state import TOWER_KEY, new_tower_state, publish_effective_lr
+from .host_clock import Clock, clock_of, start_clock
 from .hyperparams import hyperparam_step
 from .levels import Level, tower_step
 from .measure import Measurement, complete_across_ranks, grads_finite, measure
 from .plan import Batch, Plan, make_plan
-from .safeguards import decide, limit_first_step, take_back, typical_scale
+from .safeguards import RETREAT_WINDOW, limit_first_step, retreat_test, take_back, typical_scale
 from .search import keeps_searching
 
 __all__ = ["step_group"]
@@ -49,12 +51,14 @@ def step_group(rule: BaseRule, group: dict[str, Any], state: Any, owner: str) ->
         return
     device = batch.params[0].device if batch.params else distributed.local_device(group)
     ts = group.get(TOWER_KEY)
+    created = ts is None
     if ts is None:
         ts = group[TOWER_KEY] = new_tower_state(group, rule.learned_initial(group), device)
     if not group["levels"] and "hyper_value" not in ts:
         plain_step(rule, group, state, ts, batch, sharded)
         return
-    plan = make_plan(group, ts, rule, batch, sharded)
+    clock = _clock(group, ts, created)
+    plan = make_plan(group, ts, rule, batch, sharded, clock)
     m = measure(rule, group, ts, plan, batch)
     if sharded:  # partial sums over this rank's parameters: complete them before deciding
         completed = complete_across_ranks(m, group, len(batch.params))
@@ -64,17 +68,49 @@ def step_group(rule: BaseRule, group: dict[str, Any], state: Any, owner: str) ->
     update_dot = _update_dot(plan, m)
     finite = _all_finite(m, update_dot)
     clip = _clip_signal(m)
-    decision = decide(ts, finite, m.prev_dot, m.gmax if plan.blowup_guard else None, plan.startup_test, clip)
-    if decision.skip:
+    test = retreat_test(ts, m.prev_dot, m.gmax if plan.blowup_guard else None, plan.startup_test, clip)
+    search_dot = keeps_searching(m.prev_dot, ts["prev_slope"]) if plan.searching else None
+    skip, retreat = _read_outcome(ts, plan, clock, finite, test, search_dot)
+    if skip:
         ts["skipped"] += 1
         return
-    if decision.retreat_factor is not None:
-        take_back(rule, group, ts, batch.params, batch.states, plan.unit_of, plan.a_prev, decision.retreat_factor)
+    if retreat:
+        assert test is not None
+        take_back(rule, group, ts, batch.params, batch.states, plan.unit_of, plan.a_prev, test[1])
         return
-    a0 = learn(rule, group, ts, plan, batch, m, update_dot)
+    a0 = learn(rule, group, ts, plan, batch, m, update_dot, search_dot)
     if clip is not None:
         clipping.remember(ts, clip)
     apply(rule, group, ts.get("hyper_value"), plan, batch, a0)
+
+
+def _clock(group: dict[str, Any], ts: dict[str, Tensor], created: bool) -> Clock:
+    search_on = group.get("growth_search") is not None and bool(group["levels"])
+    return start_clock(ts, search_on) if created else clock_of(ts, RETREAT_WINDOW, search_on)
+
+
+def _read_outcome(
+    ts: dict[str, Tensor],
+    plan: Plan,
+    clock: Clock,
+    finite: Tensor,
+    test: tuple[Tensor, Tensor] | None,
+    search_dot: Tensor | None,
+) -> tuple[bool, bool]:
+    """The step's one host read: skip it, take the last step back, or take it (and does the
+    growth search go on). Records the outcome on the host's ``clock``."""
+    flags = [~finite, test[0] if test is not None else torch.zeros_like(finite)]
+    if search_dot is not None and plan.steps_taken > 0:  # the levels' search test (none on the first step)
+        flags.append(((ts["search"] >= 0) & (search_dot.to(ts["search"]) > 0)).any())
+    values = torch.stack(flags).tolist()
+    skip, retreat = bool(values[0]), bool(values[1]) and not values[0]
+    searching = clock.searching
+    if retreat:  # a step too large ends the growth search
+        searching = False
+    elif not skip and len(values) > 2:
+        searching = bool(values[2])
+    clock.advance(taken=not (skip or retreat), searching=searching, window=RETREAT_WINDOW)
+    return skip, retreat
 
 
 def _batch(group: dict[str, Any], state: Any, sharded: bool, owner: str) -> Batch | None:
@@ -121,6 +157,7 @@ def learn(
     batch: Batch,
     m: Measurement,
     update_dot: Tensor,
+    search_dot: Tensor | None,
 ) -> Tensor:
     """Learned hyperparameters, then the levels; returns this step's ``a_0`` [U] and counts the step."""
     ts["retreated"].fill_(0)
@@ -128,7 +165,6 @@ def learn(
         hyperparam_step(ts, m.tangent_dots, plan.a_prev.mean(), Level(**group["hyper_level"]))
         ts["prev_lr"] = plan.lr0
     if plan.levels:
-        search_dot = keeps_searching(m.prev_dot, ts["prev_slope"]) if plan.searching else None
         a0 = tower_step(ts, plan.levels, update_dot, group["lr"], search_dot, plan.search_max_move)
     else:
         a0 = plan.lr0.expand(plan.units)

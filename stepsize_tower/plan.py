@@ -10,6 +10,7 @@ from torch import Tensor
 
 from .bases import BaseRule
 from .group_state import levels_of
+from .host_clock import Clock
 from .levels import Level
 from .safeguards import RETREAT_WINDOW
 
@@ -55,21 +56,21 @@ class Plan:
     blowup_guard: bool
     #: The one-step dot products ``<g_s, d_{0,s-1}>`` are needed (no trail, or a test uses them).
     exact: bool
+    #: After the start-up window: nothing depends on the step count, and the step reads nothing.
+    settled: bool
 
 
-def make_plan(group: dict[str, Any], ts: dict[str, Tensor], rule: BaseRule, batch: Batch, sharded: bool) -> Plan:
-    """The step's flags; at most one host read (the step count, and whether a unit still searches)."""
+def make_plan(
+    group: dict[str, Any], ts: dict[str, Tensor], rule: BaseRule, batch: Batch, sharded: bool, clock: Clock
+) -> Plan:
+    """The step's flags, from the host's ``clock`` of the group (no read)."""
     levels = levels_of(group)
     units = ts["log_step"].shape[0]
     per_tensor = group["granularity"] == "tensor"
     unit_of = list(batch.indices) if per_tensor else [0] * len(batch.params)
     lr0 = torch.as_tensor(group["lr"], dtype=torch.float64, device=ts["step"].device).reshape(1)
     search_max_move = group.get("growth_search") if levels and "search" in ts else None
-    if search_max_move is None:
-        steps_taken, searching = int(ts["step"]), False
-    else:  # one host read for both
-        counters = torch.stack([ts["step"], (ts["search"] >= 0).any().to(ts["step"].dtype)]).tolist()
-        steps_taken, searching = int(counters[0]), bool(counters[1])
+    steps_taken, searching = clock.steps_taken, clock.searching and search_max_move is not None
     horizon = float(group["horizon"])
     # The start-up test runs in the first steps and for as long as the growth search goes on.
     startup_test = bool(group["retreat"]) and bool(levels) and (steps_taken < RETREAT_WINDOW or searching)
@@ -90,4 +91,5 @@ def make_plan(group: dict[str, Any], ts: dict[str, Tensor], rule: BaseRule, batc
         clip_check=startup_test and steps_taken <= 1,
         blowup_guard=bool(group["retreat"]) and bool(levels) and not rule.normalized,
         exact=horizon == 0 or startup_test or searching,
+        settled=clock.settled,
     )

@@ -39,7 +39,6 @@ tensor lives whole on one rank (the logs and counts are summed).
 
 from __future__ import annotations
 
-from dataclasses import dataclass
 from typing import Any
 
 import torch
@@ -56,9 +55,8 @@ __all__ = [
     "RETREAT_BLOWUP",
     "RETREAT_MIN_FACTOR",
     "RETREAT_WINDOW",
-    "Decision",
-    "decide",
     "limit_first_step",
+    "retreat_test",
     "take_back",
     "typical_scale",
 ]
@@ -84,27 +82,18 @@ RETREAT_AGAIN_RATIO = 10.0
 RETREAT_BLOWUP = 10.0
 
 
-@dataclass(frozen=True)
-class Decision:
-    """What happens to this step: skipped (something non-finite), taken back (``retreat_factor``), or taken."""
-
-    skip: bool
-    retreat_factor: Tensor | None
-
-
-def decide(
+def retreat_test(
     ts: dict[str, Tensor],
-    finite: Tensor,
     prev_dot: Tensor,
     gmax: Tensor | None,
     startup_test: bool,
     clip: ClipSignal | None = None,
-) -> Decision:
-    """Skip, retreat (with its factor on ``a_{0,s-1}``) or take the step; one host read.
+) -> tuple[Tensor, Tensor] | None:
+    """Whether to take the last step back (a bool tensor) and the factor on ``a_{0,s-1}``; no read.
 
-    ``finite``: every measured value is finite; ``prev_dot``: ``<g_s, d_{0,s-1}>`` per unit;
-    ``gmax``: the largest gradient entry when the blow-up guard runs; ``clip``: this step's
-    gradient norm and largest entry during the start-up window (:mod:`stepsize_tower.clipping`).
+    ``prev_dot``: ``<g_s, d_{0,s-1}>`` per unit; ``gmax``: the largest gradient entry when the
+    blow-up guard runs; ``clip``: this step's gradient norm and largest entry during the
+    start-up window (:mod:`stepsize_tower.clipping`). None when no test runs this step.
     """
     tests: list[tuple[Tensor, Tensor]] = []  # (fires, factor on a_{0,s-1}), first firing wins
     if startup_test:  # the loss rose along the last step (secant ratio rho)
@@ -118,17 +107,13 @@ def decide(
         blowup_ratio = gmax / ts["peak_gmax"]
         tests.append(((ts["peak_gmax"] > 0) & (blowup_ratio > RETREAT_BLOWUP), 1.0 / (1.0 + blowup_ratio)))
     if not tests:
-        return Decision(skip=not bool(finite), retreat_factor=None)
-    retreat = tests[0][0]
+        return None
+    retreat, factor = tests[0][0], tests[-1][1]
     for fires, _ in tests[1:]:
         retreat = retreat | fires
-    skip_now, retreat_now = torch.stack([~finite, retreat]).tolist()
-    if skip_now or not retreat_now:
-        return Decision(skip=bool(skip_now), retreat_factor=None)
-    factor = tests[-1][1]
     for fires, candidate in reversed(tests[:-1]):
         factor = torch.where(fires, candidate, factor)
-    return Decision(skip=False, retreat_factor=factor)
+    return retreat, factor
 
 
 def take_back(

@@ -1,0 +1,85 @@
+"""What the host knows about a group's progress without reading the device.
+
+How many steps a group has taken, and whether its growth search goes on, decide what a
+step does (:func:`stepsize_tower.plan.make_plan`): the start-up test, the clipping check and
+the first-step limit run only early. Reading them from the device every step would stall an
+accelerator's launch queue, so the host keeps a mirror of them:
+
+* during the start-up window the mirror is exact: the step's one read (the skip/retreat
+  decision) also tells whether the step was taken and whether the search goes on;
+* once ``steps_taken >= RETREAT_WINDOW`` and no unit searches, the group is *settled*: no
+  later step depends on the count (it only grows, the search never restarts), so the host
+  stops following it and the step reads nothing (skips become masked updates).
+
+The mirror is keyed by the group's step-count tensor itself (weakly): a state loaded from a
+checkpoint brings a new tensor, whose count is then read once.
+"""
+
+from __future__ import annotations
+
+import weakref
+from dataclasses import dataclass
+
+import torch
+from torch import Tensor
+
+__all__ = ["Clock", "clock_of", "start_clock"]
+
+
+@dataclass
+class Clock:
+    """The host's mirror of one group's progress."""
+
+    #: Steps taken (skips and retreats excluded): exact until settled, then a lower bound.
+    steps_taken: int
+    #: Whether some unit still runs the growth search.
+    searching: bool
+    #: No later step depends on the count: the step reads nothing from the device.
+    settled: bool = False
+
+    def advance(self, taken: bool, searching: bool, window: int) -> None:
+        """Record a step's outcome (known from its one read), and settle after the window."""
+        if taken:
+            self.steps_taken += 1
+        self.searching = searching
+        self.settled = self.steps_taken >= window and not searching
+
+
+#: ``id(step tensor) -> (weak reference to it, mirror)``. Not a ``WeakKeyDictionary``: its
+#: lookups compare keys with ``==``, which for tensors is an elementwise op and a host read.
+_CLOCKS: dict[int, tuple[weakref.ref[Tensor], Clock]] = {}
+
+
+def _keep(step: Tensor, clock: Clock) -> Clock:
+    key = id(step)
+    _CLOCKS[key] = (weakref.ref(step, lambda _: _CLOCKS.pop(key, None)), clock)
+    return clock
+
+
+def _lookup(step: Tensor) -> Clock | None:
+    entry = _CLOCKS.get(id(step))
+    if entry is None or entry[0]() is not step:
+        return None
+    return entry[1]
+
+
+def start_clock(ts: dict[str, Tensor], search_on: bool) -> Clock:
+    """The mirror of a group state created in this process (nothing taken yet: no read).
+
+    ``search_on``: the group runs the growth search (its option is set and it has levels).
+    """
+    return _keep(ts["step"], Clock(steps_taken=0, searching=search_on and "search" in ts))
+
+
+def clock_of(ts: dict[str, Tensor], window: int, search_on: bool) -> Clock:
+    """The group's mirror; read from the device once for a state this process did not create."""
+    clock = _lookup(ts["step"])
+    if clock is None:
+        if search_on and "search" in ts:
+            counters = torch.stack([ts["step"], (ts["search"] >= 0).any().to(ts["step"].dtype)]).tolist()
+        else:
+            counters = [ts["step"].item(), 0.0]
+        clock = Clock(steps_taken=int(counters[0]), searching=bool(counters[1]))
+        clock.settled = clock.steps_taken >= window and not clock.searching
+        _keep(ts["step"], clock)
+    return clock
