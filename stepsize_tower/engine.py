@@ -31,13 +31,13 @@ from torch import Tensor
 from . import clipping, distributed, trail
 from .bases import BaseRule, CompiledTrail
 from .clipping import ClipSignal
-from .group_state import TOWER_KEY, new_tower_state, publish_effective_lr
+from .group_state import EFFECTIVE_LR_KEY, TOWER_KEY, new_tower_state, publish_effective_lr
 from .host_clock import Clock, clock_of, start_clock
 from .hyperparams import hyperparam_step
 from .levels import Level, tower_step
 from .measure import Measurement, complete_across_ranks, grads_finite, measure
 from .plan import Batch, Plan, make_plan
-from .safeguards import RETREAT_WINDOW, limit_first_step, retreat_test, take_back, typical_scale
+from .safeguards import RETREAT_WINDOW, limit_first_step, retreat_test, take_back, take_back_where, typical_scale
 from .search import keeps_searching
 
 __all__ = ["step_group"]
@@ -70,6 +70,9 @@ def step_group(rule: BaseRule, group: dict[str, Any], state: Any, owner: str) ->
     clip = _clip_signal(m)
     test = retreat_test(ts, m.prev_dot, m.gmax if plan.blowup_guard else None, plan.startup_test, clip)
     search_dot = keeps_searching(m.prev_dot, ts["prev_slope"]) if plan.searching else None
+    if plan.settled and not sharded:
+        _masked_step(rule, group, ts, plan, batch, m, update_dot, finite, test)
+        return
     skip, retreat = _read_outcome(ts, plan, clock, finite, test, search_dot)
     if skip:
         ts["skipped"] += 1
@@ -82,6 +85,32 @@ def step_group(rule: BaseRule, group: dict[str, Any], state: Any, owner: str) ->
     if clip is not None:
         clipping.remember(ts, clip)
     apply(rule, group, ts.get("hyper_value"), plan, batch, a0)
+
+
+def _masked_step(
+    rule: BaseRule,
+    group: dict[str, Any],
+    ts: dict[str, Tensor],
+    plan: Plan,
+    batch: Batch,
+    m: Measurement,
+    update_dot: Tensor,
+    finite: Tensor,
+    test: tuple[Tensor, Tensor] | None,
+) -> None:
+    """A settled step (after the start-up window) with no host read: the skip and SGD's
+    blow-up retreat are masks on the device, and every update is taken or undone by them.
+    Where nothing fires the result is bitwise the unmasked step's."""
+    keep = finite
+    if test is not None:  # SGD's blow-up guard, the one test that runs after the window
+        fires = test[0] & finite
+        take_back_where(rule, group, ts, batch.params, batch.states, plan.unit_of, plan.a_prev, test[1], fires)
+        keep = finite & ~fires
+    ts["skipped"] += (~finite).to(ts["skipped"].dtype)
+    published = group[EFFECTIVE_LR_KEY]
+    a0 = learn(rule, group, ts, plan, batch, m, update_dot, None, keep)
+    group[EFFECTIVE_LR_KEY] = torch.where(keep, group[EFFECTIVE_LR_KEY], published)
+    apply(rule, group, ts.get("hyper_value"), plan, batch, a0, skip=~keep)
 
 
 def _clock(group: dict[str, Any], ts: dict[str, Tensor], created: bool) -> Clock:
@@ -158,24 +187,37 @@ def learn(
     m: Measurement,
     update_dot: Tensor,
     search_dot: Tensor | None,
+    keep: Tensor | None = None,
 ) -> Tensor:
-    """Learned hyperparameters, then the levels; returns this step's ``a_0`` [U] and counts the step."""
-    ts["retreated"].fill_(0)
+    """Learned hyperparameters, then the levels; returns this step's ``a_0`` [U] and counts the step.
+
+    With ``keep`` (a 0-dim bool tensor), masked: where it is False the state stays as it was.
+    """
+    if keep is None:
+        ts["retreated"].fill_(0)
+    else:
+        ts["retreated"].copy_(torch.where(keep, 0.0, ts["retreated"]))
     if m.tangent_dots is not None:
-        hyperparam_step(ts, m.tangent_dots, plan.a_prev.mean(), Level(**group["hyper_level"]))
-        ts["prev_lr"] = plan.lr0
+        hyperparam_step(ts, m.tangent_dots, plan.a_prev.mean(), Level(**group["hyper_level"]), keep)
+        ts["prev_lr"] = plan.lr0 if keep is None or "prev_lr" not in ts else torch.where(keep, plan.lr0, ts["prev_lr"])
     if plan.levels:
-        a0 = tower_step(ts, plan.levels, update_dot, group["lr"], search_dot, plan.search_max_move)
+        a0 = tower_step(ts, plan.levels, update_dot, group["lr"], search_dot, plan.search_max_move, keep)
     else:
         a0 = plan.lr0.expand(plan.units)
     limit = group.get("first_step_limit")
     if limit is not None and plan.steps_taken == 0 and plan.levels and rule.normalized:
         a0 = limit_first_step(ts, a0, float(limit), _typical_scale(group, plan, batch, a0))
     publish_effective_lr(group, a0)
-    ts["prev_slope"].copy_(m.slope)
+    if keep is None:
+        ts["prev_slope"].copy_(m.slope)
+        if m.gmax is not None and plan.blowup_guard:
+            torch.maximum(ts["peak_gmax"], m.gmax, out=ts["peak_gmax"])
+        ts["step"] += 1
+        return a0
+    ts["prev_slope"].copy_(torch.where(keep, m.slope, ts["prev_slope"]))
     if m.gmax is not None and plan.blowup_guard:
-        torch.maximum(ts["peak_gmax"], m.gmax, out=ts["peak_gmax"])
-    ts["step"] += 1
+        ts["peak_gmax"].copy_(torch.where(keep, torch.maximum(ts["peak_gmax"], m.gmax), ts["peak_gmax"]))
+    ts["step"] += keep.to(ts["step"].dtype)
     return a0
 
 
@@ -191,8 +233,19 @@ def _typical_scale(group: dict[str, Any], plan: Plan, batch: Batch, a0: Tensor) 
     )
 
 
-def apply(rule: BaseRule, group: dict[str, Any], learned: Tensor | None, plan: Plan, batch: Batch, a0: Tensor) -> None:
-    """The base update with step sizes ``a0`` [units], folded into the trail when ``horizon > 0``."""
+def apply(
+    rule: BaseRule,
+    group: dict[str, Any],
+    learned: Tensor | None,
+    plan: Plan,
+    batch: Batch,
+    a0: Tensor,
+    skip: Tensor | None = None,
+) -> None:
+    """The base update with step sizes ``a0`` [units], folded into the trail when ``horizon > 0``.
+
+    ``skip``: a 0-dim bool tensor; where it holds, nothing changes (no host read).
+    """
     if not batch.params:  # a rank holding none of a sharded group's parameters
         return
     per_unit = [a0[u] for u in range(a0.shape[0])]  # one tensor per unit: one fused kernel call per unit
@@ -200,14 +253,18 @@ def apply(rule: BaseRule, group: dict[str, Any], learned: Tensor | None, plan: P
     params, grads, states = batch.params, batch.grads, batch.states
     horizon = plan.horizon if plan.levels else 0.0
     if horizon == 0:
-        rule.update(group, learned, params, grads, states, step_sizes)
+        rule.update(group, learned, params, grads, states, step_sizes, skip)
         return
     trails = trail.ensure(params, states)
     weight = 1.0 - horizon
-    if a0.shape[0] == 1 and isinstance(rule, CompiledTrail):
+    if a0.shape[0] == 1 and isinstance(rule, CompiledTrail) and skip is None:
         if rule.update_with_trail(group, params, grads, states, trails, a0[0], weight):
             return
-    trail.fold_update(trails, params, weight, lambda: rule.update(group, learned, params, grads, states, step_sizes))
+
+    def move() -> None:
+        rule.update(group, learned, params, grads, states, step_sizes, skip)
+
+    trail.fold_update(trails, params, weight, move, skip)
 
 
 def plain_step(

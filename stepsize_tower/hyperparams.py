@@ -48,13 +48,16 @@ def init_hyperparam_state(values: Sequence[float], device: torch.device) -> dict
     }
 
 
-def hyperparam_step(ts: dict[str, Tensor], tangent_dots: Tensor, a0_prev: Tensor, level: Level) -> None:
+def hyperparam_step(
+    ts: dict[str, Tensor], tangent_dots: Tensor, a0_prev: Tensor, level: Level, keep: Tensor | None = None
+) -> None:
     """Update the learned hyperparameters in place from ``<g_s, T_{s-1}>`` (shape [H]).
 
-    Does nothing on the first call (no tangent exists yet); call only for taken steps.
+    Does nothing on the first call (no tangent exists yet); call only for taken steps, or
+    with ``keep`` (a 0-dim bool tensor) masked: nothing changes where it is False.
     """
     value, z = ts["hyper_value"], ts["hyper_logit"]
-    has_prev = ts["hyper_count"] > 0
+    has_prev = ts["hyper_count"] > 0 if keep is None else (ts["hyper_count"] > 0) & keep
     h = -a0_prev * tangent_dots.to(value) * value * (1 - value)
     beta1, beta2 = level.betas
     m = torch.lerp(ts["hyper_exp_avg"], h, 1 - beta1)
@@ -70,4 +73,4 @@ def hyperparam_step(ts: dict[str, Tensor], tangent_dots: Tensor, a0_prev: Tensor
     ts["hyper_exp_avg_sq"].copy_(torch.where(has_prev, v, ts["hyper_exp_avg_sq"]))
     ts["hyper_grad"].copy_(torch.where(has_prev, h, ts["hyper_grad"]))
     value.copy_(torch.sigmoid(z))
-    ts["hyper_count"] += 1
+    ts["hyper_count"] += 1 if keep is None else keep.to(ts["hyper_count"].dtype)

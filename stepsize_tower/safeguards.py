@@ -48,7 +48,7 @@ from torch import distributed as dist
 from . import clipping, trail
 from .bases import BaseRule, chunks
 from .clipping import ClipSignal
-from .group_state import publish_effective_lr
+from .group_state import EFFECTIVE_LR_KEY, publish_effective_lr
 
 __all__ = [
     "RETREAT_AGAIN_RATIO",
@@ -58,6 +58,7 @@ __all__ = [
     "limit_first_step",
     "retreat_test",
     "take_back",
+    "take_back_where",
     "typical_scale",
 ]
 
@@ -140,6 +141,37 @@ def take_back(
     ts["retreats"] += 1
     ts["retreated"].fill_(1)
     publish_effective_lr(group, a_new)
+
+
+def take_back_where(
+    rule: BaseRule,
+    group: dict[str, Any],
+    ts: dict[str, Tensor],
+    params: list[Tensor],
+    states: list[dict[str, Any]],
+    unit_of: list[int],
+    a_prev: Tensor,
+    factor: Tensor,
+    fires: Tensor,
+) -> None:
+    """:func:`take_back` masked by ``fires`` (a 0-dim bool tensor), with no host read.
+
+    Where ``fires`` is False the factor is exactly 1: the weights move by ``(a - a) d = 0``,
+    ``log 1 = 0`` is added to ``u_0``, and the trail and counters stay as they are.
+    """
+    factor = torch.where(fires, torch.clamp(factor, min=RETREAT_MIN_FACTOR, max=0.5), 1.0)
+    a_new = a_prev * factor
+    learned = ts.get("hyper_value")
+    for p, st, u in zip(params, states, unit_of, strict=True):
+        rule.retreat(group, learned, p, st, a_prev[u], a_new[u])
+        trail.clear_where(st, fires)
+    ts["log_step"][:, 0] += factor.log()
+    ts["prev_step"][:, 0] = a_new
+    ts["retreats"] += fires.to(ts["retreats"].dtype)
+    ts["retreated"].copy_(torch.where(fires, 1.0, ts["retreated"]))
+    before = group[EFFECTIVE_LR_KEY]
+    publish_effective_lr(group, a_new)
+    group[EFFECTIVE_LR_KEY] = torch.where(fires, group[EFFECTIVE_LR_KEY], before)
 
 
 def limit_first_step(

@@ -20,7 +20,10 @@ from torch import Tensor
 
 from .bases import chunks
 
-__all__ = ["TRAIL_KEY", "clear", "dots", "ensure", "fold_update", "has_trail"]
+__all__ = ["TRAIL_KEY", "clear", "clear_where", "dots", "ensure", "fold_update", "has_trail"]
+
+#: Trail dtypes in which a tensor-valued weight rounds exactly like the float one.
+_EXACT_DTYPES = (torch.float32, torch.float64)
 
 #: Per-parameter state key of the trail (the name checkpoints carry).
 TRAIL_KEY = "update_ema"
@@ -53,17 +56,40 @@ def dots(
     ]
 
 
-def fold_update(trails: list[Tensor], params: list[Tensor], weight: float, move: Callable[[], None]) -> None:
+def fold_update(
+    trails: list[Tensor], params: list[Tensor], weight: float, move: Callable[[], None], skip: Tensor | None = None
+) -> None:
     """Run ``move`` and fold the update it makes into ``E <- (1 - weight) E + weight (w_before - w_after)``.
 
-    Two passes: ``E <- lerp(E, w_before, weight)``, then ``E <- E - weight w_after``.
+    Two passes: ``E <- lerp(E, w_before, weight)``, then ``E <- E - weight w_after``. With
+    ``skip`` (a 0-dim bool tensor: ``move`` changes nothing where it holds) the weight is the
+    tensor ``weight * (1 - skip)``, so a skipped step leaves ``E`` exactly as it was, with no
+    host read; for float32/float64 tensors the taken step is bitwise the same as with the
+    float weight. 16-bit trails are restored with ``where`` instead.
     """
-    torch._foreach_lerp_(trails, params, weight)
-    move()
-    torch._foreach_add_(trails, params, alpha=-weight)
+    if skip is None:
+        torch._foreach_lerp_(trails, params, weight)
+        move()
+        torch._foreach_add_(trails, params, alpha=-weight)
+    elif all(t.dtype in _EXACT_DTYPES for t in trails):
+        kept = [(~skip).to(t.dtype) * weight for t in trails]
+        torch._foreach_lerp_(trails, params, kept)
+        move()
+        torch._foreach_addcmul_(trails, params, [-k for k in kept])
+    else:
+        before = [t.clone() for t in trails]
+        fold_update(trails, params, weight, move)
+        for t, old in zip(trails, before, strict=True):
+            t.copy_(torch.where(skip, old, t))
 
 
 def clear(state: dict[str, Any]) -> None:
     """Start the tensor's trail afresh (after a retreat)."""
     if TRAIL_KEY in state:
         state[TRAIL_KEY].zero_()
+
+
+def clear_where(state: dict[str, Any], fires: Tensor) -> None:
+    """:func:`clear` where the 0-dim bool tensor ``fires`` holds (no host read; ``E * 1 = E`` exactly)."""
+    if TRAIL_KEY in state:
+        state[TRAIL_KEY].mul_((~fires).to(state[TRAIL_KEY].dtype))

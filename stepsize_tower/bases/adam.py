@@ -9,7 +9,7 @@ import torch
 from torch import Tensor
 from torch.optim.adam import adam as torch_adam
 
-from . import chunks, compiled, fused
+from . import chunks, compiled, fused, masking
 from .adam_math import Beta, adam_denominator, adam_direction, betas_in_use, bias_corrections, update_moments
 from .buffers import keep
 from .grad import loss_grad
@@ -75,10 +75,9 @@ class AdamRule:
         m_all, v_all, p_all = chunks.flat(state["exp_avg"]), chunks.flat(state["exp_avg_sq"]), chunks.flat(p)
         g_u_prev = torch.zeros((), dtype=torch.float64, device=p.device)
         g_u_new, g_w = torch.zeros_like(g_u_prev), torch.zeros_like(g_u_prev)
-        first = bool(step == 0) if step.device.type == "cpu" else False
         for g, m, v, w in chunks.chunks(g_all, m_all, v_all, p_all) if exact else ():
-            if not first:
-                g_u_prev += chunks.dot(g, adam_direction(m, v, bc2s_prev.to(v.dtype), eps))
+            # On the first step this is 0/0 (no moments yet); the where below discards it.
+            g_u_prev += chunks.dot(g, adam_direction(m, v, bc2s_prev.to(v.dtype), eps))
             if slope:  # the start-up test's <g_s, d_{0,s}>: the direction this step would take
                 m_new, v_new = m.clone(), v.clone()
                 update_moments(m_new, v_new, g, *betas)
@@ -94,7 +93,7 @@ class AdamRule:
         if group.get("learn_betas"):
             for key in ("beta1_tangent", "beta2_tangent"):
                 t = state.get(key)
-                tangent_dots.append(chunks.dot(g_all, chunks.flat(t)) if t is not None else g_u_prev * 0)
+                tangent_dots.append(chunks.dot(g_all, chunks.flat(t)) if t is not None else torch.zeros_like(g_u_prev))
         return Probe(dot_prev, new_slope, tangent_dots)
 
     def update(
@@ -105,29 +104,48 @@ class AdamRule:
         grads: list[Tensor],
         states: list[dict[str, Any]],
         step_sizes: Sequence[Tensor | float],
+        skip: Tensor | None = None,
     ) -> None:
         for p, st in zip(params, states, strict=True):
             _init(p, st)
         companions = [(g, st["exp_avg"], st["exp_avg_sq"]) for g, st in zip(grads, states, strict=True)]
         if not group.get("learn_betas") and fused.fused_applies(group, params, companions):
-            self._update_fused(group, params, grads, states, step_sizes)
+            self._update_fused(group, params, grads, states, step_sizes, skip)
             return
+
+        def one(i: int) -> None:
+            self._update_one(group, learned, params[i], grads[i], states[i], step_sizes[i])
+
+        if skip is None:
+            for i in range(len(params)):
+                one(i)
+        else:
+            masking.masked_per_tensor(skip, params, states, one)
+
+    def _update_one(
+        self,
+        group: dict[str, Any],
+        learned: Tensor | None,
+        p: Tensor,
+        grad: Tensor,
+        st: dict[str, Any],
+        a: Tensor | float,
+    ) -> None:
+        """The reference update of one tensor (any layout, learned betas)."""
         betas = betas_in_use(group, learned)
         eps, wd = group["eps"], group["weight_decay"]
-        learn = bool(group.get("learn_betas"))
-        for p, grad, st, a in zip(params, grads, states, step_sizes, strict=True):
-            g = self.loss_grad(group, p, grad)
-            st["step"] += 1
-            m, v = st["exp_avg"], st["exp_avg_sq"]
-            old = (m.clone(), v.clone()) if learn else None
-            update_moments(m, v, g, *betas)
-            bc1, bc2s = bias_corrections(betas, st["step"])
-            if old is not None:
-                denom = adam_denominator(v, bc2s.to(p.dtype), eps)
-                _keep_tangents(st, g, old[0], old[1], denom, *betas)
-            if self.decoupled and wd != 0:
-                p.mul_(1 - a * wd)
-            p.sub_(adam_direction(m, v, bc2s.to(p.dtype), eps).mul_((a / bc1).to(p.dtype)))
+        g = self.loss_grad(group, p, grad)
+        st["step"] += 1
+        m, v = st["exp_avg"], st["exp_avg_sq"]
+        old = (m.clone(), v.clone()) if group.get("learn_betas") else None
+        update_moments(m, v, g, *betas)
+        bc1, bc2s = bias_corrections(betas, st["step"])
+        if old is not None:
+            denom = adam_denominator(v, bc2s.to(p.dtype), eps)
+            _keep_tangents(st, g, old[0], old[1], denom, *betas)
+        if self.decoupled and wd != 0:
+            p.mul_(1 - a * wd)
+        p.sub_(adam_direction(m, v, bc2s.to(p.dtype), eps).mul_((a / bc1).to(p.dtype)))
 
     def torch_update(
         self, group: dict[str, Any], params: list[Tensor], grads: list[Tensor], states: list[dict[str, Any]]
@@ -163,8 +181,13 @@ class AdamRule:
         grads: list[Tensor],
         states: list[dict[str, Any]],
         step_sizes: Sequence[Tensor | float],
+        skip: Tensor | None = None,
     ) -> None:
-        """One pass of torch's fused Adam kernel per distinct step size (one call per group by default)."""
+        """One pass of torch's fused Adam kernel per distinct step size (one call per group by default).
+
+        With ``skip``, the kernel's ``found_inf`` leaves weights and moments unchanged where it
+        holds, and the step counts are taken back by it, as ``torch.optim.Adam(fused=True)`` does.
+        """
         beta1, beta2 = group["betas"]
         kernel = torch._fused_adamw_ if self.decoupled else torch._fused_adam_
         for lr, idx in fused.by_step_size(step_sizes):
@@ -184,7 +207,10 @@ class AdamRule:
                 weight_decay=group["weight_decay"],
                 eps=group["eps"],
                 maximize=group["maximize"],
+                **masking.found_inf(skip),
             )
+            if skip is not None:
+                torch._foreach_sub_(steps, [skip.to(steps[0].dtype)] * len(steps))
 
     def retreat(
         self,

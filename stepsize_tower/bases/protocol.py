@@ -68,8 +68,13 @@ class BaseRule(Protocol):
         grads: list[Tensor],
         states: list[dict[str, Any]],
         step_sizes: Sequence[Tensor | float],
+        skip: Tensor | None = None,
     ) -> None:
-        """Move every weight one step with its step size ``a_0``."""
+        """Move every weight one step with its step size ``a_0``.
+
+        ``skip``: a 0-dim bool tensor; where it holds, nothing changes (weights and state), with
+        no host read (:mod:`stepsize_tower.bases.masking`).
+        """
         ...
 
     def torch_update(

@@ -9,7 +9,7 @@ import torch
 from torch import Tensor
 from torch.optim.sgd import sgd as torch_sgd
 
-from . import chunks, fused
+from . import chunks, fused, masking
 from .buffers import keep
 from .grad import loss_grad
 from .protocol import Probe
@@ -91,17 +91,26 @@ class SGDRule:
         grads: list[Tensor],
         states: list[dict[str, Any]],
         step_sizes: Sequence[Tensor | float],
+        skip: Tensor | None = None,
     ) -> None:
         keep_grad = bool(group["levels"]) and (group["momentum"] == 0 or group["nesterov"])
         learn = bool(group.get("learn_momentum"))
-        if not learn and _fused_update(group, params, grads, states, step_sizes, keep_grad):
+        if not learn and _fused_update(group, params, grads, states, step_sizes, keep_grad, skip):
             return
-        for p, grad, state, a in zip(params, grads, states, step_sizes, strict=True):
-            g = _grad(group, p, grad)
+
+        def one(i: int) -> None:
+            p, state = params[i], states[i]
+            g = _grad(group, p, grads[i])
             if keep_grad:  # plain SGD and Nesterov rebuild the previous direction from g_{s-1}
                 keep(state, "prev_grad", g)
             d = g if group["momentum"] == 0 else _momentum_direction(group, _momentum(group, learned), g, state, learn)
-            _move(p, d, a)
+            _move(p, d, step_sizes[i])
+
+        if skip is None:
+            for i in range(len(params)):
+                one(i)
+        else:
+            masking.masked_per_tensor(skip, params, states, one)
 
     def torch_update(
         self, group: dict[str, Any], params: list[Tensor], grads: list[Tensor], states: list[dict[str, Any]]
@@ -174,6 +183,7 @@ def _fused_update(
     states: list[dict[str, Any]],
     step_sizes: Sequence[Tensor | float],
     keep_grad: bool,
+    skip: Tensor | None = None,
 ) -> bool:
     """torch's fused SGD kernel, one call per distinct step size; False where it does not apply.
 
@@ -203,7 +213,10 @@ def _fused_update(
         bufs = [st["momentum_buffer"] for st in states]
     if keep_grad:
         for p, grad, st in zip(params, grads, states, strict=True):
-            keep(st, "prev_grad", _grad(group, p, grad))
+            g = _grad(group, p, grad)
+            if skip is not None and "prev_grad" in st:  # a skipped step keeps the last gradient
+                g = torch.where(skip, st["prev_grad"], g)
+            keep(st, "prev_grad", g)
     for lr, idx in fused.by_step_size(step_sizes):
         torch._fused_sgd_(
             [params[i] for i in idx],
@@ -216,6 +229,7 @@ def _fused_update(
             nesterov=group["nesterov"],
             maximize=group["maximize"],
             is_first_step=first,
+            **masking.found_inf(skip),
         )
     return True
 

@@ -75,6 +75,7 @@ def tower_step(
     lr: float | Tensor,
     search_dot: Tensor | None = None,
     search_max_move: float | None = None,
+    keep: Tensor | None = None,
 ) -> Tensor:
     """Update every level in place from ``<g_s, Δ>`` and return the new ``a_0`` [U].
 
@@ -83,7 +84,9 @@ def tower_step(
     as they are and ``a_0 = lr * exp(u_0)``. Call it only for steps that are taken (finite
     gradients, no retreat). With ``search_max_move`` and ``search_dot`` (the search's test
     margin [U], :func:`stepsize_tower.search.keeps_searching`), units still in the growth
-    search grow faster; a state without ``"search"`` has no search.
+    search grow faster; a state without ``"search"`` has no search. With ``keep`` (a 0-dim
+    bool tensor), the update is masked: where it is False nothing changes and the last
+    ``a_0`` is returned (no host read on the tensor path).
     """
     u = ts["log_step"]
     if not levels:
@@ -92,5 +95,5 @@ def tower_step(
         search_max_move = search_dot = None
     # Compiled steps keep tensors: no graph breaks, no guards on float values.
     if u.device.type == "cpu" and u.numel() <= HOST_MATH_MAX and not torch.compiler.is_compiling():
-        return tower_step_host(ts, levels, update_dot, lr, search_dot, search_max_move)
-    return tower_step_tensors(ts, levels, update_dot, lr, search_dot, search_max_move)
+        return tower_step_host(ts, levels, update_dot, lr, search_dot, search_max_move, keep)
+    return tower_step_tensors(ts, levels, update_dot, lr, search_dot, search_max_move, keep)

@@ -87,8 +87,11 @@ def tower_step_host(
     lr: float | Tensor,
     search_dot: Tensor | None = None,
     search_max_move: float | None = None,
+    keep: Tensor | None = None,
 ) -> Tensor:
     """:func:`~stepsize_tower.levels.tower_step` in Python floats (arguments and result alike)."""
+    if keep is not None and not bool(keep):  # a masked step not taken (a CPU tensor: no device read)
+        return ts["prev_step"][:, 0].clone()
     keys = ("log_step", "prev_step", "prev_dir", "exp_avg", "exp_avg_sq")
     units = [_Unit(*rows) for rows in zip(*(ts[k].tolist() for k in keys), strict=True)]
     count = float(ts["step"])

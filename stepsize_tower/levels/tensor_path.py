@@ -87,10 +87,11 @@ def tower_step_tensors(
     lr: float | Tensor,
     search_dot: Tensor | None = None,
     search_max_move: float | None = None,
+    keep: Tensor | None = None,
 ) -> Tensor:
     """:func:`tower_step` as tensor operations: no host read (accelerators, compiled steps)."""
     u = ts["log_step"]
-    has_prev = ts["step"] > 0
+    has_prev = ts["step"] > 0 if keep is None else (ts["step"] > 0) & keep
     hyper = _hypergradients(update_dot, u, ts["prev_step"], ts["prev_dir"])
     boost = new_search = None
     exp_avg = ts["exp_avg"]
@@ -109,6 +110,11 @@ def tower_step_tensors(
     if new_search is not None:
         ts["search"].copy_(torch.where(has_prev, new_search, ts["search"]))
     prev_step = ts["prev_step"]
-    prev_step.copy_(u.exp())
-    prev_step[:, 0] *= lr
+    if keep is None:
+        prev_step.copy_(u.exp())
+        prev_step[:, 0] *= lr
+    else:  # a masked step keeps the step sizes it had (lr may have moved since)
+        new_step = u.exp()
+        new_step[:, 0] *= lr
+        prev_step.copy_(torch.where(keep, new_step, prev_step))
     return prev_step[:, 0].clone()
