@@ -15,8 +15,10 @@
                cut by the first-step limit on the first step             (safeguards.limit_first_step)
     apply      w_s = w_{s-1} - a_{0,s} d_{0,s} (the base's update), folded into the trail  (trail)
 
-Host reads: one per group and step, the skip/retreat flags (which also keep the host's clock
-of the step count); all learned values stay tensors.
+Host reads: during the start-up window, one per group and step (the skip/retreat flags, which
+also keep the host's clock of the step count, :mod:`stepsize_tower.host_clock`); once settled,
+none: a skip or SGD's blow-up retreat is a mask on the device (:func:`_masked_step`). Sharded
+groups read their reduced gradient count each step. All learned values stay tensors.
 A group with nothing to learn (depth 0, no learned hyperparameters) is the base optimizer
 itself, with non-finite steps skipped (:func:`plain_step`).
 """

@@ -167,6 +167,8 @@ def take_back_where(
         trail.clear_where(st, fires)
     ts["log_step"][:, 0] += factor.log()
     ts["prev_step"][:, 0] = a_new
+    if "search" in ts:  # a step too large ends the growth search
+        ts["search"].copy_(torch.where(fires, -1.0, ts["search"]))
     ts["retreats"] += fires.to(ts["retreats"].dtype)
     ts["retreated"].copy_(torch.where(fires, 1.0, ts["retreated"]))
     before = group[EFFECTIVE_LR_KEY]

@@ -1,0 +1,196 @@
+"""After the start-up window a step reads nothing from the device; the masked steps equal the read path.
+
+On an accelerator every device-to-host read (``aten::_local_scalar_dense``: ``.item()``,
+``bool(t)``, ``int(t)``; and ``.tolist()``) stalls the launch queue and stops a step from
+being captured in a CUDA graph (common practice: torch's own ``capturable`` / ``found_inf``
+paths avoid them for the same reason). These tests count them on the CPU with the level
+math forced onto its tensor path (the one accelerators take; on the CPU the tower's few
+scalars are otherwise computed in Python floats, which reads CPU memory, not a device).
+
+Reference for the results: the same optimizer with the read path kept for every step
+(the window never ends), compared bitwise (``torch.equal``) on weights and every state tensor.
+"""
+
+from __future__ import annotations
+
+from collections import Counter
+from collections.abc import Callable
+from typing import Any
+
+import pytest
+import torch
+from torch import Tensor, nn
+from torch.utils._python_dispatch import TorchDispatchMode
+
+import stepsize_tower.engine as engine
+import stepsize_tower.levels as levels
+from stepsize_tower import TowerAdam, TowerAdamW, TowerSGD, make_tower
+from tests.registry import CONFIGS, Config
+
+_READ_OPS = (torch.ops.aten._local_scalar_dense.default, torch.ops.aten.item.default)
+
+#: Depth 0 is torch.optim's own update (its reads are torch's); everything else must read nothing.
+_TOWERS = [c for c in CONFIGS if "depth0" not in c.name] + [
+    Config("adam_growth_search", lambda p: TowerAdam(p, lr=1e-5, growth_search=1.0), "growth search"),
+    Config("adamw_no_retreat", lambda p: TowerAdamW(p, lr=1e-3, retreat=False), "no start-up test"),
+    Config("sgd_plain_horizon0", lambda p: TowerSGD(p, lr=0.01, horizon=0.0), "one-step hypergradient"),
+    Config("adam_tensor_fused_off", lambda p: make_tower(p, "adam", 2, lr=1e-3, granularity="tensor", fused=False), ""),
+]
+
+
+class _Reads(TorchDispatchMode):
+    """Counts device-to-host reads dispatched to aten, plus ``Tensor.tolist`` calls (not dispatched)."""
+
+    def __init__(self) -> None:
+        super().__init__()
+        self.count = Counter[str]()
+
+    def __torch_dispatch__(self, func: Any, types: Any, args: Any = (), kwargs: Any = None) -> Any:
+        if func in _READ_OPS:
+            self.count[str(func)] += 1
+        return func(*args, **(kwargs or {}))
+
+
+@pytest.fixture
+def tensor_path(monkeypatch: pytest.MonkeyPatch) -> None:
+    """The level math as on an accelerator: tensor operations, no Python floats."""
+    monkeypatch.setattr(levels, "HOST_MATH_MAX", 0)
+
+
+@pytest.fixture
+def reads(monkeypatch: pytest.MonkeyPatch) -> _Reads:
+    """A read counter that also sees ``Tensor.tolist`` (which does not dispatch to aten)."""
+    counter = _Reads()
+    original = Tensor.tolist
+
+    def counted(self: Tensor) -> Any:
+        counter.count["tolist"] += 1
+        return original(self)
+
+    monkeypatch.setattr(Tensor, "tolist", counted)
+    return counter
+
+
+def _model() -> nn.Module:
+    torch.manual_seed(0)
+    return nn.Sequential(nn.Linear(6, 12), nn.Tanh(), nn.Linear(12, 2))
+
+
+def _batch(step: int) -> tuple[Tensor, Tensor]:
+    gen = torch.Generator().manual_seed(100 + step)
+    x = torch.randn(16, 6, generator=gen)
+    return x, torch.sin(x[:, :2] * 1.5)
+
+
+Event = Callable[[int, nn.Module], None]
+
+
+def _train(
+    config: Config, steps: int, event: Event | None = None, reads: _Reads | None = None
+) -> tuple[nn.Module, Any, list[int]]:
+    """Train; ``event(step, model)`` may alter the gradients. Returns the model, optimizer and reads per step."""
+    model = _model()
+    opt = config.factory(model.parameters())
+    per_step = []
+    for step in range(steps):
+        opt.zero_grad()
+        x, y = _batch(step)
+        nn.functional.mse_loss(model(x), y).backward()
+        if event is not None:
+            event(step, model)
+        before = sum(reads.count.values()) if reads is not None else 0
+        if reads is not None:
+            with reads:
+                opt.step()
+        else:
+            opt.step()
+        per_step.append(sum(reads.count.values()) - before if reads is not None else 0)
+    return model, opt, per_step
+
+
+#: One configuration per update path (fused / reference / per-tensor / learned betas / each SGD
+#: variant); the whole table under ``-m slow``.
+_QUICK = {
+    "sgd", "sgd_nesterov", "sgd_learn_momentum", "adam", "adam_unfused", "adam_depth3_tensor",
+    "adam_learn_betas", "adamw",
+}  # fmt: skip
+
+
+def _quick_or_slow(configs: list[Config], quick: set[str]) -> list[Any]:
+    return [pytest.param(c, id=c.name, marks=() if c.name in quick else pytest.mark.slow) for c in configs]
+
+
+@pytest.mark.parametrize("config", _quick_or_slow(_TOWERS, _QUICK | {"adam_growth_search", "sgd_momentum"}))
+def test_steps_after_the_window_read_nothing_from_the_device(config: Config, tensor_path: None, reads: _Reads) -> None:
+    _, _, per_step = _train(config, 50, reads=reads)
+    assert max(per_step[:10]) <= 1, f"{config.name}: start-up steps read more than once: {per_step[:10]}"
+    assert sum(per_step[10:]) == 0, f"{config.name}: steps 11-50 read the device {per_step[10:]} ({dict(reads.count)})"
+
+
+INF_STEP, BLOWUP_STEP, NO_GRAD_STEP = 25, 32, 38
+
+
+def _events(step: int, model: nn.Module) -> None:
+    """A non-finite gradient (skip), a gradient 1e4 times larger (SGD's blow-up guard), a missing gradient."""
+    weight, bias = model[0].weight, model[2].bias
+    assert weight.grad is not None and bias.grad is not None
+    if step == INF_STEP:
+        weight.grad[0, 0] = float("inf")
+    if step == BLOWUP_STEP:
+        for p in model.parameters():
+            assert p.grad is not None
+            p.grad.mul_(1e4)
+    if step == NO_GRAD_STEP:
+        bias.grad = None
+
+
+def _state_tensors(opt: Any) -> dict[str, Tensor]:
+    out = {}
+    for i, group in enumerate(opt.state_dict()["param_groups"]):
+        for key, value in group.get("tower", {}).items():
+            out[f"group{i}/{key}"] = value
+    for index, st in opt.state_dict()["state"].items():
+        for key, value in st.items():
+            if isinstance(value, Tensor):
+                out[f"state{index}/{key}"] = value
+    return out
+
+
+_BITWISE_CASES = [
+    pytest.param(c, path, id=f"{c.name}-{path}", marks=() if c.name in _QUICK and path == "host" else pytest.mark.slow)
+    for c in _TOWERS
+    for path in ("host", "tensor")
+]
+_BITWISE_CASES += [
+    pytest.param(c, "tensor", id=f"{c.name}-tensor-quick") for c in _TOWERS if c.name in {"sgd", "adamw"}
+]
+
+
+@pytest.mark.parametrize(("config", "path"), _BITWISE_CASES)
+def test_masked_steps_equal_the_read_path_bitwise(config: Config, path: str, monkeypatch: pytest.MonkeyPatch) -> None:
+    if path == "tensor":
+        monkeypatch.setattr(levels, "HOST_MATH_MAX", 0)
+    model, opt, _ = _train(config, 45, _events)
+    monkeypatch.setattr(engine, "RETREAT_WINDOW", 10**9)  # the reference: the read path for every step
+    ref_model, ref_opt, _ = _train(config, 45, _events)
+    for (name, p), q in zip(model.named_parameters(), ref_model.parameters(), strict=True):
+        assert torch.equal(p, q), f"{config.name}: weight {name} differs from the read path"
+    got, want = _state_tensors(opt), _state_tensors(ref_opt)
+    assert got.keys() == want.keys()
+    for key in want:
+        assert torch.equal(got[key], want[key]), f"{config.name}: {key} differs from the read path"
+    assert opt.skipped_steps() == 1, "the non-finite step was not skipped"
+
+
+@pytest.mark.parametrize("path", ["host", "tensor"])
+def test_sgd_blowup_after_the_window_is_taken_back_without_a_read(path: str, monkeypatch: pytest.MonkeyPatch) -> None:
+    """The masked blow-up retreat fires (retreats counted, step size cut by 1/(1 + r)) as the read path's does."""
+    if path == "tensor":
+        monkeypatch.setattr(levels, "HOST_MATH_MAX", 0)
+    config = Config("sgd", lambda p: TowerSGD(p, lr=0.01), "")
+    _, opt, _ = _train(config, BLOWUP_STEP)
+    retreats_before = opt.retreats()
+    lr_before = float(opt.param_groups[0]["effective_lr"])
+    _, opt, _ = _train(config, BLOWUP_STEP + 1, _events)
+    assert opt.retreats() == retreats_before + 1
+    assert float(opt.param_groups[0]["effective_lr"]) < lr_before / 10
