@@ -3,12 +3,13 @@
 On an accelerator every device-to-host read (``aten::_local_scalar_dense``: ``.item()``,
 ``bool(t)``, ``int(t)``; and ``.tolist()``) stalls the launch queue and stops a step from
 being captured in a CUDA graph (common practice: torch's own ``capturable`` / ``found_inf``
-paths avoid them for the same reason). These tests count them on the CPU with the level
-math forced onto its tensor path (the one accelerators take; on the CPU the tower's few
-scalars are otherwise computed in Python floats, which reads CPU memory, not a device).
+paths avoid them for the same reason). These tests run the accelerators' path on the CPU:
+settled steps masked (``engine.MASK_ON_CPU``) and, for the counts, the level math on its
+tensor path (on the CPU the tower's few scalars are otherwise Python floats, which reads CPU
+memory, not a device).
 
-Reference for the results: the same optimizer with the read path kept for every step
-(the window never ends), compared bitwise (``torch.equal``) on weights and every state tensor.
+Reference for the results: the CPU's default path, which keeps one read per step, compared
+bitwise (``torch.equal``) on weights and every state tensor.
 """
 
 from __future__ import annotations
@@ -49,6 +50,12 @@ class _Reads(TorchDispatchMode):
         if func in _READ_OPS:
             self.count[str(func)] += 1
         return func(*args, **(kwargs or {}))
+
+
+@pytest.fixture(autouse=True)
+def masked_on_cpu(monkeypatch: pytest.MonkeyPatch) -> None:
+    """Settled steps masked as on an accelerator (CPU groups otherwise keep their free read)."""
+    monkeypatch.setattr(engine, "MASK_ON_CPU", True)
 
 
 @pytest.fixture
@@ -171,7 +178,7 @@ def test_masked_steps_equal_the_read_path_bitwise(config: Config, path: str, mon
     if path == "tensor":
         monkeypatch.setattr(levels, "HOST_MATH_MAX", 0)
     model, opt, _ = _train(config, 45, _events)
-    monkeypatch.setattr(engine, "RETREAT_WINDOW", 10**9)  # the reference: the read path for every step
+    monkeypatch.setattr(engine, "MASK_ON_CPU", False)  # the reference: the read path for every step
     ref_model, ref_opt, _ = _train(config, 45, _events)
     for (name, p), q in zip(model.named_parameters(), ref_model.parameters(), strict=True):
         assert torch.equal(p, q), f"{config.name}: weight {name} differs from the read path"
