@@ -1,8 +1,8 @@
 """Compiled fused passes for the Adam step with the trail: correctness, compile cost and step time.
 
 What it measures
-    * Correctness of the kernels in ``experiments/fused_kernels.py`` (a copy of the library's
-      ``stepsize_tower/bases/compiled.py``) and of the lagged one defined here (compiled
+    * Correctness of the library's kernels (``stepsize_tower/bases/compiled.py``, whose
+      building blocks the variants here reuse) and of the lagged one defined here (compiled
       with torch.compile / inductor when it works, else eagerly):
       - against a float64 reference written with plain torch ops (one step from the same
         float32 state): max abs and max relative differences of w, m, v, the trail E and the
@@ -72,8 +72,9 @@ from torch import Tensor, nn
 from stepsize_tower import TowerAdam
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
-import fused_kernels as C  # the experiment's own kernels (a sibling module)
 from step_cost import environment  # a sibling script, not a package
+
+from stepsize_tower.bases import compiled as C  # the library's kernels and their building blocks
 
 BETA1, BETA2, EPS = 0.9, 0.999, 1e-8
 TRAIL_WEIGHT = 0.01  # 1 - horizon

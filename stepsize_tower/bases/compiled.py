@@ -39,6 +39,7 @@ recompiles once, then dynamo treats it as dynamic.
 from __future__ import annotations
 
 import logging
+import os
 from collections.abc import Callable, Sequence
 from typing import Any
 
@@ -49,11 +50,16 @@ from .adam_math import adam_direction
 from .grad import loss_grad
 
 __all__ = [
+    "ENV_SWITCH",
     "adam_trail_update",
+    "adam_trail_values",
     "available",
     "reset",
     "two_pass_dot",
 ]
+
+#: Environment variable: set to "0" to never compile (``compiled=True`` then takes the default path).
+ENV_SWITCH = "STEPSIZE_TOWER_COMPILE"
 
 _log = logging.getLogger(__name__)
 
@@ -74,9 +80,12 @@ def available() -> bool:
     """Whether torch.compile (inductor, with a working C++ compiler) can run these kernels.
 
     Decided once per process by compiling and running a tiny kernel; any failure (no
-    inductor, no compiler, an unsupported Python) gives False.
+    inductor, no compiler, an unsupported Python) gives False, and so does
+    ``STEPSIZE_TOWER_COMPILE=0`` (:data:`ENV_SWITCH`).
     """
     global _available
+    if os.environ.get(ENV_SWITCH, "1") == "0":
+        return False
     if _available is None:
         _available = _probe_once()
     return _available
@@ -177,7 +186,7 @@ def _adam_new(
     return p - u, m_new, v_new, u
 
 
-def _tensor_step(
+def adam_trail_values(
     p: Tensor,
     g: Tensor,
     m: Tensor,
@@ -238,7 +247,7 @@ def _update_body(
 ) -> Tensor:
     coefs = _adam_scalars(steps, a, beta1, beta2, weight_decay, decoupled)
     for i, (p, g, m, v, e) in enumerate(zip(params, grads, exp_avgs, exp_avg_sqs, trails, strict=True)):
-        _, w_new, m_new, v_new, e_new = _tensor_step(
+        _, w_new, m_new, v_new, e_new = adam_trail_values(
             p, g, m, v, e, coefs[i], beta1, beta2, eps, weight_decay, decoupled, maximize, trail_weight
         )
         p.copy_(w_new)
