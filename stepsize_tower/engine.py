@@ -12,7 +12,8 @@
                -> retreat, retreats += 1          (safeguards.retreat_test / take_back, clipping)
     learn      learned momentum / betas (hyperparams.hyperparam_step), then the levels,
                top-down, with the growth search -> a_{0,s} (levels.tower_step),
-               cut by the first-step limit on the first step             (safeguards.limit_first_step)
+               cut by the first-step limit on the first step and on steps
+               whose lr rises above its peak (a warm-up)                 (safeguards.limit_first_step)
     apply      w_s = w_{s-1} - a_{0,s} d_{0,s} (the base's update), folded into the trail  (trail)
 
 Host reads: during the start-up window, one per group and step (the skip/retreat flags, which
@@ -39,7 +40,7 @@ from .host_clock import Clock, clock_of, start_clock
 from .hyperparams import hyperparam_step
 from .levels import Level, tower_step
 from .measure import Measurement, complete_across_ranks, grads_finite, measure
-from .plan import Batch, Plan, make_plan
+from .plan import Batch, Plan, host_lr, make_plan
 from .safeguards import RETREAT_WINDOW, limit_first_step, retreat_test, take_back, take_back_where, typical_scale
 from .search import keeps_searching
 
@@ -81,8 +82,9 @@ def step_group(rule: BaseRule, group: dict[str, Any], state: Any, owner: str) ->
     search_dot = keeps_searching(m.prev_dot, ts["prev_slope"]) if plan.searching else None
     if plan.settled and not sharded and (device.type != "cpu" or MASK_ON_CPU):
         _masked_step(rule, group, ts, plan, batch, m, update_dot, finite, test)
+        clock.raise_peak(host_lr(group))
         return
-    skip, retreat = _read_outcome(ts, plan, clock, finite, test, search_dot)
+    skip, retreat = _read_outcome(ts, plan, clock, finite, test, search_dot, host_lr(group))
     if skip:
         ts["skipped"] += 1
         return
@@ -124,7 +126,7 @@ def _masked_step(
 
 def _clock(group: dict[str, Any], ts: dict[str, Tensor], created: bool) -> Clock:
     search_on = group.get("growth_search") is not None and bool(group["levels"])
-    return start_clock(ts, search_on) if created else clock_of(ts, RETREAT_WINDOW, search_on)
+    return start_clock(ts, search_on) if created else clock_of(ts, RETREAT_WINDOW, search_on, host_lr(group))
 
 
 def _read_outcome(
@@ -134,6 +136,7 @@ def _read_outcome(
     finite: Tensor,
     test: tuple[Tensor, Tensor] | None,
     search_dot: Tensor | None,
+    lr: float | None,
 ) -> tuple[bool, bool]:
     """The step's one host read: skip it, take the last step back, or take it (and does the
     growth search go on). Records the outcome on the host's ``clock``."""
@@ -147,7 +150,7 @@ def _read_outcome(
         searching = False
     elif not skip and len(values) > 2:
         searching = bool(values[2])
-    clock.advance(taken=not (skip or retreat), searching=searching, window=RETREAT_WINDOW)
+    clock.advance(taken=not (skip or retreat), searching=searching, window=RETREAT_WINDOW, lr=lr)
     return skip, retreat
 
 
@@ -214,8 +217,8 @@ def learn(
     else:
         a0 = plan.lr0.expand(plan.units)
     limit = group.get("first_step_limit")
-    if limit is not None and plan.steps_taken == 0 and plan.levels and rule.normalized:
-        a0 = limit_first_step(ts, a0, float(limit), _typical_scale(group, plan, batch, a0))
+    if limit is not None and (plan.steps_taken == 0 or plan.rising) and plan.levels and rule.normalized:
+        a0 = limit_first_step(ts, a0, float(limit), _typical_scale(group, plan, batch, a0), keep)
     publish_effective_lr(group, a0)
     if keep is None:
         ts["prev_slope"].copy_(m.slope)

@@ -36,13 +36,23 @@ class Clock:
     searching: bool
     #: No later step depends on the count: the step reads nothing from the device.
     settled: bool = False
+    #: The largest ``group["lr"]`` (a float) of the taken steps, 0 before the first: a step whose
+    #: ``lr`` is above it is "rising" (a warm-up), and Adam-like bases cap it like a first step.
+    #: Once settled, every step's ``lr`` counts (whether it was taken is not read).
+    peak_lr: float = 0.0
 
-    def advance(self, taken: bool, searching: bool, window: int) -> None:
+    def advance(self, taken: bool, searching: bool, window: int, lr: float | None = None) -> None:
         """Record a step's outcome (known from its one read), and settle after the window."""
         if taken:
             self.steps_taken += 1
+            self.raise_peak(lr)
         self.searching = searching
         self.settled = self.steps_taken >= window and not searching
+
+    def raise_peak(self, lr: float | None) -> None:
+        """``peak_lr <- max(peak_lr, lr)`` (``None``: a tensor ``lr``, not followed)."""
+        if lr is not None and lr > self.peak_lr:
+            self.peak_lr = lr
 
 
 #: ``id(step tensor) -> (weak reference to it, mirror)``. Not a ``WeakKeyDictionary``: its
@@ -71,7 +81,7 @@ def start_clock(ts: dict[str, Tensor], search_on: bool) -> Clock:
     return _keep(ts["step"], Clock(steps_taken=0, searching=search_on and "search" in ts))
 
 
-def clock_of(ts: dict[str, Tensor], window: int, search_on: bool) -> Clock:
+def clock_of(ts: dict[str, Tensor], window: int, search_on: bool, lr: float | None = None) -> Clock:
     """The group's mirror; read from the device once for a state this process did not create."""
     clock = _lookup(ts["step"])
     if clock is None:
@@ -80,6 +90,8 @@ def clock_of(ts: dict[str, Tensor], window: int, search_on: bool) -> Clock:
         else:
             counters = [ts["step"].item(), 0.0]
         clock = Clock(steps_taken=int(counters[0]), searching=bool(counters[1]))
+        if clock.steps_taken > 0 and isinstance(lr, float):  # resumed: the lr in effect is the peak known
+            clock.peak_lr = lr
         clock.settled = clock.steps_taken >= window and not clock.searching
         _keep(ts["step"], clock)
     return clock

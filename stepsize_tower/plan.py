@@ -14,7 +14,7 @@ from .host_clock import Clock
 from .levels import Level
 from .safeguards import RETREAT_WINDOW
 
-__all__ = ["Batch", "Plan", "make_plan"]
+__all__ = ["Batch", "Plan", "host_lr", "make_plan"]
 
 
 @dataclass(frozen=True)
@@ -58,6 +58,8 @@ class Plan:
     exact: bool
     #: After the start-up window: nothing depends on the step count, and the step reads nothing.
     settled: bool
+    #: ``group["lr"]`` is above its largest value of the taken steps (the first step, a warm-up).
+    rising: bool
 
 
 def make_plan(
@@ -92,4 +94,11 @@ def make_plan(
         blowup_guard=bool(group["retreat"]) and bool(levels) and not rule.normalized,
         exact=horizon == 0 or startup_test or searching,
         settled=clock.settled,
+        rising=bool(levels) and host_lr(group) is not None and host_lr(group) > clock.peak_lr,  # type: ignore[operator]
     )
+
+
+def host_lr(group: dict[str, Any]) -> float | None:
+    """``group["lr"]`` as a Python float, or None when it is a tensor (not read: no host sync)."""
+    lr = group["lr"]
+    return None if isinstance(lr, Tensor) else float(lr)
