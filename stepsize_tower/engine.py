@@ -41,7 +41,7 @@ from .hyperparams import hyperparam_step
 from .levels import Level, tower_step
 from .measure import Measurement, complete_across_ranks, grads_finite, measure
 from .plan import Batch, Plan, host_lr, make_plan
-from .safeguards import RETREAT_WINDOW, limit_first_step, retreat_test, take_back, take_back_where, typical_scale
+from .safeguards import RETREAT_WINDOW, limit_first_step, retreat_test, take_back, typical_scale
 from .search import keeps_searching
 
 __all__ = ["MASK_ON_CPU", "step_group"]
@@ -115,7 +115,7 @@ def _masked_step(
     keep = finite
     if test is not None:  # SGD's blow-up guard, the one test that runs after the window
         fires = test[0] & finite
-        take_back_where(rule, group, ts, batch.params, batch.states, plan.unit_of, plan.a_prev, test[1], fires)
+        take_back(rule, group, ts, batch.params, batch.states, plan.unit_of, plan.a_prev, test[1], fires)
         keep = finite & ~fires
     ts["skipped"] += (~finite).to(ts["skipped"].dtype)
     published = group[EFFECTIVE_LR_KEY]

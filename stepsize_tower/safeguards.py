@@ -68,7 +68,6 @@ __all__ = [
     "limit_first_step",
     "retreat_test",
     "take_back",
-    "take_back_where",
     "typical_scale",
 ]
 
@@ -136,54 +135,41 @@ def take_back(
     unit_of: list[int],
     a_prev: Tensor,
     factor: Tensor,
+    fires: Tensor | None = None,
 ) -> None:
-    """Take the last step back and redo it with ``a_prev * factor`` (clipped); the levels stay as they are."""
-    factor = torch.clamp(factor, min=RETREAT_MIN_FACTOR, max=0.5)
-    a_new = a_prev * factor
-    learned = ts.get("hyper_value")
-    for p, st, u in zip(params, states, unit_of, strict=True):
-        rule.retreat(group, learned, p, st, a_prev[u], a_new[u])
-        trail.clear(st)  # the trail held the unstable steps
-    ts["log_step"][:, 0] += factor.log()
-    ts["prev_step"][:, 0] = a_new
-    if "search" in ts:  # a step too large ends the growth search
-        ts["search"].fill_(-1.0)
-    ts["retreats"] += 1
-    ts["retreated"].fill_(1)
-    publish_effective_lr(group, a_new)
+    """Take the last step back and redo it with ``a_prev * factor`` (clipped); the levels stay as they are.
 
-
-def take_back_where(
-    rule: BaseRule,
-    group: dict[str, Any],
-    ts: dict[str, Tensor],
-    params: list[Tensor],
-    states: list[dict[str, Any]],
-    unit_of: list[int],
-    a_prev: Tensor,
-    factor: Tensor,
-    fires: Tensor,
-) -> None:
-    """:func:`take_back` masked by ``fires`` (a 0-dim bool tensor), with no host read.
-
-    Where ``fires`` is False the factor is exactly 1: the weights move by ``(a - a) d = 0``,
-    ``log 1 = 0`` is added to ``u_0``, and the trail and counters stay as they are.
+    With ``fires`` (a 0-dim bool tensor) it is masked, with no host read: where ``fires`` is
+    False the factor is exactly 1, so the weights move by ``(a - a) d = 0``, ``log 1 = 0`` is
+    added to ``u_0``, and the trail and counters stay as they are.
     """
-    factor = torch.where(fires, torch.clamp(factor, min=RETREAT_MIN_FACTOR, max=0.5), 1.0)
+    factor = torch.clamp(factor, min=RETREAT_MIN_FACTOR, max=0.5)
+    if fires is not None:
+        factor = torch.where(fires, factor, 1.0)
     a_new = a_prev * factor
     learned = ts.get("hyper_value")
     for p, st, u in zip(params, states, unit_of, strict=True):
         rule.retreat(group, learned, p, st, a_prev[u], a_new[u])
-        trail.clear_where(st, fires)
+        if fires is None:  # the trail held the unstable steps
+            trail.clear(st)
+        else:
+            trail.clear_where(st, fires)
     ts["log_step"][:, 0] += factor.log()
     ts["prev_step"][:, 0] = a_new
-    if "search" in ts:  # a step too large ends the growth search
+    before = group.get(EFFECTIVE_LR_KEY)
+    publish_effective_lr(group, a_new)
+    if fires is None:
+        if "search" in ts:  # a step too large ends the growth search
+            ts["search"].fill_(-1.0)
+        ts["retreats"] += 1
+        ts["retreated"].fill_(1)
+        return
+    if "search" in ts:
         ts["search"].copy_(torch.where(fires, -1.0, ts["search"]))
     ts["retreats"] += fires.to(ts["retreats"].dtype)
     ts["retreated"].copy_(torch.where(fires, 1.0, ts["retreated"]))
-    before = group[EFFECTIVE_LR_KEY]
-    publish_effective_lr(group, a_new)
-    group[EFFECTIVE_LR_KEY] = torch.where(fires, group[EFFECTIVE_LR_KEY], before)
+    if before is not None:
+        group[EFFECTIVE_LR_KEY] = torch.where(fires, group[EFFECTIVE_LR_KEY], before)
 
 
 def limit_first_step(

@@ -116,11 +116,7 @@ class AdamRule:
         def one(i: int) -> None:
             self._update_one(group, learned, params[i], grads[i], states[i], step_sizes[i])
 
-        if skip is None:
-            for i in range(len(params)):
-                one(i)
-        else:
-            masking.masked_per_tensor(skip, params, states, one)
+        masking.per_tensor(skip, params, states, one)
 
     def _update_one(
         self,

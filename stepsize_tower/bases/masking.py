@@ -15,7 +15,7 @@ from typing import Any
 import torch
 from torch import Tensor
 
-__all__ = ["found_inf", "masked_per_tensor"]
+__all__ = ["found_inf", "per_tensor"]
 
 
 def found_inf(skip: Tensor | None) -> dict[str, Tensor]:
@@ -23,13 +23,17 @@ def found_inf(skip: Tensor | None) -> dict[str, Tensor]:
     return {} if skip is None else {"found_inf": skip.to(torch.float32)}
 
 
-def masked_per_tensor(
-    skip: Tensor,
+def per_tensor(
+    skip: Tensor | None,
     params: Sequence[Tensor],
     states: Sequence[dict[str, Any]],
     update_one: Callable[[int], None],
 ) -> None:
-    """Run ``update_one(i)`` for every tensor ``i``, undone where ``skip`` holds."""
+    """Run ``update_one(i)`` for every tensor ``i``, undone where ``skip`` holds (if given)."""
+    if skip is None:
+        for i in range(len(params)):
+            update_one(i)
+        return
     for i, (p, st) in enumerate(zip(params, states, strict=True)):
         weight_before = p.clone()
         state_before = {k: v.clone() for k, v in st.items() if isinstance(v, Tensor)}

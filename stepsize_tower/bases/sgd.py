@@ -106,11 +106,7 @@ class SGDRule:
             d = g if group["momentum"] == 0 else _momentum_direction(group, _momentum(group, learned), g, state, learn)
             _move(p, d, step_sizes[i])
 
-        if skip is None:
-            for i in range(len(params)):
-                one(i)
-        else:
-            masking.masked_per_tensor(skip, params, states, one)
+        masking.per_tensor(skip, params, states, one)
 
     def torch_update(
         self, group: dict[str, Any], params: list[Tensor], grads: list[Tensor], states: list[dict[str, Any]]
