@@ -97,3 +97,20 @@ def test_masked_warmup_steps_equal_the_read_path_bitwise(monkeypatch: pytest.Mon
     monkeypatch.setattr(engine, "MASK_ON_CPU", False)
     read = _run(_warmup, lr=10.0, steps=WARM + 5)
     assert masked == read
+
+
+def test_the_cap_runs_on_rising_steps_only(monkeypatch: pytest.MonkeyPatch) -> None:
+    """A warm-up is checked on each of its steps; a decay and a return to the peak never are."""
+    calls: list[int] = []
+    original = engine.limit_first_step
+
+    def spy(*args: object, **kwargs: object) -> torch.Tensor:
+        calls.append(len(calls))
+        return original(*args, **kwargs)  # type: ignore[arg-type]
+
+    monkeypatch.setattr(engine, "limit_first_step", spy)
+    _run(lambda s: 0.1 if 5 <= s < 10 else 1.0, lr=1e-3, steps=20)
+    assert len(calls) == 1, "only the first step may be capped when lr returns to its earlier peak"
+    calls.clear()
+    _run(_warmup, lr=1e-3, steps=WARM + 10)
+    assert len(calls) == WARM, f"the cap ran on {len(calls)} steps of a {WARM}-step warm-up"
