@@ -41,7 +41,7 @@ from .hyperparams import hyperparam_step
 from .levels import Level, tower_step
 from .measure import Measurement, complete_across_ranks, grads_finite, measure
 from .plan import Batch, Plan, host_lr, make_plan
-from .safeguards import RETREAT_WINDOW, limit_first_step, retreat_test, take_back, typical_scale
+from .safeguards import limit_first_step, retreat_test, take_back, typical_scale
 from .search import keeps_searching
 
 __all__ = ["MASK_ON_CPU", "step_group"]
@@ -126,7 +126,7 @@ def _masked_step(
 
 def _clock(group: dict[str, Any], ts: dict[str, Tensor], created: bool) -> Clock:
     search_on = group.get("growth_search") is not None and bool(group["levels"])
-    return start_clock(ts, search_on) if created else clock_of(ts, RETREAT_WINDOW, search_on, host_lr(group))
+    return start_clock(ts, search_on) if created else clock_of(ts, search_on, host_lr(group))
 
 
 def _read_outcome(
@@ -150,7 +150,7 @@ def _read_outcome(
         searching = False
     elif not skip and len(values) > 2:
         searching = bool(values[2])
-    clock.advance(taken=not (skip or retreat), searching=searching, window=RETREAT_WINDOW, lr=lr)
+    clock.advance(taken=not (skip or retreat), searching=searching, lr=lr)
     return skip, retreat
 
 

@@ -23,6 +23,8 @@ from dataclasses import dataclass
 import torch
 from torch import Tensor
 
+from .safeguards import RETREAT_WINDOW
+
 __all__ = ["Clock", "clock_of", "start_clock"]
 
 
@@ -34,20 +36,22 @@ class Clock:
     steps_taken: int
     #: Whether some unit still runs the growth search.
     searching: bool
-    #: No later step depends on the count: the step reads nothing from the device.
-    settled: bool = False
     #: The largest ``group["lr"]`` (a float) of the taken steps, 0 before the first: a step whose
     #: ``lr`` is above it is "rising" (a warm-up), and Adam-like bases cap it like a first step.
     #: Once settled, every step's ``lr`` counts (whether it was taken is not read).
     peak_lr: float = 0.0
 
-    def advance(self, taken: bool, searching: bool, window: int, lr: float | None = None) -> None:
-        """Record a step's outcome (known from its one read), and settle after the window."""
+    @property
+    def settled(self) -> bool:
+        """No later step depends on the count: the step reads nothing from the device."""
+        return self.steps_taken >= RETREAT_WINDOW and not self.searching
+
+    def advance(self, taken: bool, searching: bool, lr: float | None = None) -> None:
+        """Record a step's outcome (known from its one read)."""
         if taken:
             self.steps_taken += 1
             self.raise_peak(lr)
         self.searching = searching
-        self.settled = self.steps_taken >= window and not searching
 
     def raise_peak(self, lr: float | None) -> None:
         """``peak_lr <- max(peak_lr, lr)`` (``None``: a tensor ``lr``, not followed)."""
@@ -81,7 +85,7 @@ def start_clock(ts: dict[str, Tensor], search_on: bool) -> Clock:
     return _keep(ts["step"], Clock(steps_taken=0, searching=search_on and "search" in ts))
 
 
-def clock_of(ts: dict[str, Tensor], window: int, search_on: bool, lr: float | None = None) -> Clock:
+def clock_of(ts: dict[str, Tensor], search_on: bool, lr: float | None = None) -> Clock:
     """The group's mirror; read from the device once for a state this process did not create."""
     clock = _lookup(ts["step"])
     if clock is None:
@@ -90,8 +94,7 @@ def clock_of(ts: dict[str, Tensor], window: int, search_on: bool, lr: float | No
         else:
             counters = [ts["step"].item(), 0.0]
         clock = Clock(steps_taken=int(counters[0]), searching=bool(counters[1]))
-        if clock.steps_taken > 0 and isinstance(lr, float):  # resumed: the lr in effect is the peak known
-            clock.peak_lr = lr
-        clock.settled = clock.steps_taken >= window and not clock.searching
+        if clock.steps_taken > 0:  # resumed: the lr in effect is the peak known
+            clock.raise_peak(lr)
         _keep(ts["step"], clock)
     return clock

@@ -74,6 +74,7 @@ def make_plan(
     search_max_move = group.get("growth_search") if levels and "search" in ts else None
     steps_taken, searching = clock.steps_taken, clock.searching and search_max_move is not None
     horizon = float(group["horizon"])
+    lr = host_lr(group)
     # The start-up test runs in the first steps and for as long as the growth search goes on.
     startup_test = bool(group["retreat"]) and bool(levels) and (steps_taken < RETREAT_WINDOW or searching)
     return Plan(
@@ -94,7 +95,7 @@ def make_plan(
         blowup_guard=bool(group["retreat"]) and bool(levels) and not rule.normalized,
         exact=horizon == 0 or startup_test or searching,
         settled=clock.settled,
-        rising=bool(levels) and host_lr(group) is not None and host_lr(group) > clock.peak_lr,  # type: ignore[operator]
+        rising=bool(levels) and lr is not None and lr > clock.peak_lr,
     )
 
 

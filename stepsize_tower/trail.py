@@ -72,10 +72,11 @@ def fold_update(
         move()
         torch._foreach_add_(trails, params, alpha=-weight)
     elif all(t.dtype in _EXACT_DTYPES for t in trails):
-        kept = [(~skip).to(t.dtype) * weight for t in trails]
-        torch._foreach_lerp_(trails, params, kept)
+        kept = {dtype: (~skip).to(dtype) * weight for dtype in {t.dtype for t in trails}}  # one per dtype
+        torch._foreach_lerp_(trails, params, [kept[t.dtype] for t in trails])
         move()
-        torch._foreach_addcmul_(trails, params, [-k for k in kept])
+        dropped = {dtype: -k for dtype, k in kept.items()}
+        torch._foreach_addcmul_(trails, params, [dropped[t.dtype] for t in trails])
     else:
         before = [t.clone() for t in trails]
         fold_update(trails, params, weight, move)
