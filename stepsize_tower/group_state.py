@@ -26,12 +26,17 @@ EFFECTIVE_LR_KEY = "effective_lr"
 
 def levels_of(group: dict[str, Any]) -> tuple[Level, ...]:
     """The group's levels (validated, immutable; cached: a step needs them every time)."""
-    return _levels_from(tuple((s["kind"], s["lr"], tuple(s["betas"]), s["eps"]) for s in group["levels"]))
+    # A level saved before ``shrink`` existed had the symmetric rule: it resumes with it.
+    return _levels_from(
+        tuple((s["kind"], s["lr"], tuple(s["betas"]), s["eps"], s.get("shrink", 1.0)) for s in group["levels"])
+    )
 
 
 @functools.lru_cache(maxsize=256)
-def _levels_from(key: tuple[tuple[str, float, tuple[float, ...], float], ...]) -> tuple[Level, ...]:
-    return tuple(Level(kind=k, lr=lr, betas=(betas[0], betas[1]), eps=eps) for k, lr, betas, eps in key)
+def _levels_from(key: tuple[tuple[str, float, tuple[float, ...], float, float], ...]) -> tuple[Level, ...]:
+    return tuple(
+        Level(kind=k, lr=lr, betas=(betas[0], betas[1]), eps=eps, shrink=shrink) for k, lr, betas, eps, shrink in key
+    )
 
 
 def units_of(group: dict[str, Any]) -> int:

@@ -30,6 +30,7 @@ __all__ = [
     "DEFAULT_HORIZON",
     "DEFAULT_HYPER_LEVEL",
     "GRANULARITIES",
+    "LEVEL_KEYS",
     "Option",
     "args_doc",
     "check_defaults",
@@ -80,6 +81,9 @@ DEFAULT_FIRST_STEP_LIMIT = 0.1
 
 #: The level that learns momentum or betas when asked to (logit space, fixed step size).
 DEFAULT_HYPER_LEVEL = Level(kind="adam", lr=0.01)
+
+#: The keys of a level given as a dict (JSON / YAML): the fields of :class:`Level`.
+LEVEL_KEYS = ("kind", "lr", "betas", "eps", "shrink")
 
 #: Top-level step size of a level stack, by depth (index = depth).
 _TOP_LR = {1: 0.05, 2: 0.01}
@@ -143,9 +147,9 @@ def _as_level(i: int, lv: Level | str | dict[str, Any]) -> Level:
     if isinstance(lv, str) and lv in LEVEL_KINDS:
         return Level(kind=lv)
     if isinstance(lv, dict):
-        unknown = sorted(set(lv) - {"kind", "lr", "betas", "eps"})
+        unknown = sorted(set(lv) - set(LEVEL_KEYS))
         if unknown:
-            raise ValueError(f"Invalid levels[{i}]: unknown key(s) {unknown}; expected kind, lr, betas, eps")
+            raise ValueError(f"Invalid levels[{i}]: unknown key(s) {unknown}; expected {', '.join(LEVEL_KEYS)}")
         fields: dict[str, Any] = {k: tuple(v) if k == "betas" else v for k, v in lv.items()}
         return Level(**fields)
     raise ValueError(f"Invalid levels[{i}]: {lv!r}; expected a Level or one of {', '.join(map(repr, LEVEL_KINDS))}")
@@ -154,7 +158,7 @@ def _as_level(i: int, lv: Level | str | dict[str, Any]) -> Level:
 def level_spec(level: Level | dict[str, Any]) -> dict[str, Any]:
     """A level as a plain dict (not a dataclass), so checkpoints load with ``torch.load(weights_only=True)``."""
     lv = level if isinstance(level, Level) else Level(**level)
-    return {"kind": lv.kind, "lr": lv.lr, "betas": tuple(lv.betas), "eps": lv.eps}
+    return {"kind": lv.kind, "lr": lv.lr, "betas": tuple(lv.betas), "eps": lv.eps, "shrink": lv.shrink}
 
 
 # --------------------------------------------------------------------------- checks

@@ -20,6 +20,7 @@ STACKS = {
     "adam": [Level("adam", lr=0.05)],
     "sgd": [Level("sgd", lr=0.1)],
     "adam_adam": [Level("adam", lr=0.05), Level("adam", lr=0.01)],
+    "adam_shrink": [Level("adam", lr=0.05, shrink=0.3), Level("sgd", lr=0.01, shrink=0.5)],
     "sgd_adam_sgd": [Level("sgd", lr=0.2), Level("adam", lr=0.03, betas=(0.8, 0.99)), Level("sgd", lr=1e-3)],
 }
 

@@ -63,6 +63,8 @@ def _top_down(levels: Sequence[Level], unit: _Unit, direction: list[float], boos
     step_k = levels[-1].lr
     for k in range(len(levels), 0, -1):
         change = _clip(step_k * direction[k - 1], MAX_LOG_CHANGE)
+        if change > 0:
+            change *= levels[k - 1].shrink
         if k == 1:
             change = searched_move(change, boost, max_move)
         unit.u[k - 1] = _clip(unit.u[k - 1] - change, LOG_STEP_BOUND)

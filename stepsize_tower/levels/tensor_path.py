@@ -72,6 +72,8 @@ def _top_down(levels: Sequence[Level], u: Tensor, direction: Tensor, boost: Tens
     step_k: Tensor | float = levels[-1].lr
     for k in range(len(levels), 0, -1):
         change = (step_k * direction[:, k - 1]).clamp(-MAX_LOG_CHANGE, MAX_LOG_CHANGE)
+        if levels[k - 1].shrink != 1.0:
+            change = torch.where(change > 0, change * levels[k - 1].shrink, change)
         if k == 1 and boost is not None:
             searched_move = torch.minimum(change, (change * boost).clamp_min(-max_move))
             change = torch.where((change < 0) & (boost > 1), searched_move, change)
