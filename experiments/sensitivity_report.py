@@ -252,7 +252,8 @@ def _main_row(j: Judged, task: str, base: str, method: str) -> str | None:
         ratios_best.append(min(own) / b if own and b > 0 else math.nan)
         if fixed is not None and method != FIXED:
             lr_star = _best_lr(fixed.loss[s])
-            ratios_at.append(cell.loss[s].get(lr_star, math.nan) / fixed.loss[s][lr_star])
+            at_best = fixed.loss[s][lr_star]  # 0 where the fixed rate fits exactly: no ratio
+            ratios_at.append(cell.loss[s].get(lr_star, math.nan) / at_best if at_best > 0 else math.nan)
     rb = _median_finite(ratios_best)
     best_txt = "—" if method == FIXED else f"{_fmt(rb)}{' (beats)' if rb < 1 else ''}"
     at_txt = "—"
