@@ -41,7 +41,7 @@ from .hyperparams import hyperparam_step
 from .levels import Level, tower_step
 from .measure import Measurement, complete_across_ranks, grads_finite, measure
 from .plan import Batch, Plan, host_lr, make_plan
-from .safeguards import limit_first_step, retreat_test, take_back, typical_scale
+from .safeguards import RETREAT_WINDOW, limit_first_step, retreat_test, take_back, typical_scale
 from .search import keeps_searching
 
 __all__ = ["MASK_ON_CPU", "step_group"]
@@ -212,6 +212,7 @@ def learn(
     if m.tangent_dots is not None:
         hyperparam_step(ts, m.tangent_dots, plan.a_prev.mean(), Level(**group["hyper_level"]), keep)
         ts["prev_lr"] = plan.lr0 if keep is None or "prev_lr" not in ts else torch.where(keep, plan.lr0, ts["prev_lr"])
+    u_before = ts["log_step"][:, 0].clone() if plan.levels else None
     if plan.levels:
         a0 = tower_step(ts, plan.levels, update_dot, group["lr"], search_dot, plan.search_max_move, keep)
     else:
@@ -219,6 +220,9 @@ def learn(
     limit = group.get("first_step_limit")
     if limit is not None and (plan.steps_taken == 0 or plan.rising) and plan.levels and rule.normalized:
         a0 = limit_first_step(ts, a0, float(limit), _typical_scale(group, plan, batch, a0), keep)
+    if u_before is not None and plan.horizon > 0 and not plan.rising:  # a capped warm-up step is no fall
+        active = plan.steps_taken >= RETREAT_WINDOW
+        trail.forget_larger_steps(ts, u_before, batch.states, plan.unit_of, keep, active)
     publish_effective_lr(group, a0)
     if keep is None:
         ts["prev_slope"].copy_(m.slope)

@@ -7,11 +7,15 @@ as its moving average ``E = (1 - γ) D``, one parameter-sized buffer per tensor 
 
     E <- (1 - ω) E + ω Δ,   ω = 1 - γ,   Δ = w_before - w_after
 
-A retreat clears it (it held the unstable steps).
+A retreat clears it (it held the unstable steps). Once the learned factor ``exp(u_0)`` has
+fallen far below its peak, each further fall also scales ``E`` down by the same factor
+(:func:`forget_larger_steps`), so steps taken at rates many times the current one stop
+deciding the hypergradient.
 """
 
 from __future__ import annotations
 
+import math
 from collections.abc import Callable
 from typing import Any
 
@@ -20,13 +24,34 @@ from torch import Tensor
 
 from .bases import chunks
 
-__all__ = ["TRAIL_KEY", "clear", "clear_where", "dots", "ensure", "fold_update", "has_trail"]
+__all__ = [
+    "FORGET_BELOW_PEAK",
+    "PEAK_KEY",
+    "TRAIL_KEY",
+    "clear",
+    "clear_where",
+    "dots",
+    "ensure",
+    "fold_update",
+    "forget_larger_steps",
+    "has_trail",
+]
 
 #: Trail dtypes in which a tensor-valued weight rounds exactly like the float one.
 _EXACT_DTYPES = (torch.float32, torch.float64)
 
 #: Per-parameter state key of the trail (the name checkpoints carry).
 TRAIL_KEY = "update_ema"
+
+#: Tower-state key of the largest learned log factor ``u_0`` of the taken steps, per unit.
+PEAK_KEY = "peak_log_step"
+
+#: Below ``1 / FORGET_BELOW_PEAK`` of its peak factor, a falling step size scales the trail too.
+#: Measured (experiments/README.md, "Forgetting steps taken at far larger rates"): Adam on the
+#: noisy quadratic model typed 1000x too small overshot to 6x the best rate, and a trail of
+#: horizon 0.999 that kept those steps drove the rate to 1e-5x of it; with 8 it ends at 0.8x.
+#: A transformer LM whose rate falls less than 8x from its peak is unchanged (bitwise).
+FORGET_BELOW_PEAK = 8.0
 
 
 def has_trail(states: list[dict[str, Any]]) -> bool:
@@ -94,3 +119,48 @@ def clear_where(state: dict[str, Any], fires: Tensor) -> None:
     """:func:`clear` where the 0-dim bool tensor ``fires`` holds (no host read; ``E * 1 = E`` exactly)."""
     if TRAIL_KEY in state:
         state[TRAIL_KEY].mul_((~fires).to(state[TRAIL_KEY].dtype))
+
+
+def forget_larger_steps(
+    ts: dict[str, Tensor],
+    u_before: Tensor,
+    states: list[dict[str, Any]],
+    unit_of: list[int],
+    keep: Tensor | None = None,
+    active: bool = True,
+) -> None:
+    r"""Scale the trails of units whose learned factor fell, once it is far below its peak.
+
+    With :math:`u = u_{0,s}`, :math:`u^- = u_{0,s-1}` (``u_before``, [U]) and :math:`\hat u`
+    the largest :math:`u_0` of the taken steps (state ``PEAK_KEY``, [U]):
+
+    .. math::
+        E \leftarrow r\,E, \qquad r = \begin{cases} e^{u - u^-} & u < u^- \text{ and }
+        u < \hat u - \log(\text{FORGET\_BELOW\_PEAK}) \\ 1 & \text{otherwise} \end{cases}
+
+    so the trail holds the recent updates as if they had been made at the current rate. With
+    ``keep`` (a 0-dim bool tensor) nothing changes where it is False, and nothing is read (the
+    trails are multiplied by ``r``, exactly 1 where nothing fires); without it, one read decides
+    whether any unit fires. With ``active=False`` (the start-up window, whose steps read at most
+    once) only the peak is kept.
+    """
+    u = ts["log_step"][:, 0]
+    peak = ts.get(PEAK_KEY)
+    if peak is None:  # a new tower, or one saved before the peak was kept
+        peak = ts[PEAK_KEY] = torch.maximum(u_before, u).clone()
+    elif keep is None:
+        torch.maximum(peak, u, out=peak)
+    else:
+        peak.copy_(torch.where(keep, torch.maximum(peak, u), peak))
+    if not active:
+        return
+    fires = (u < u_before) & (u < peak - math.log(FORGET_BELOW_PEAK))
+    if keep is None:
+        if not bool(fires.any()):  # the read path: skip the pass when nothing fires
+            return
+    else:
+        fires = fires & keep
+    factor = torch.where(fires, (u - u_before).exp(), torch.ones_like(u))
+    pairs = [(st[TRAIL_KEY], unit) for st, unit in zip(states, unit_of, strict=True) if TRAIL_KEY in st]
+    if pairs:
+        torch._foreach_mul_([t for t, _ in pairs], [factor[unit].to(t.dtype) for t, unit in pairs])

@@ -71,15 +71,8 @@ def test_plain_fixed_rate_at_the_same_large_step_does_wreck_the_network():
     [
         (lambda p, lr: TowerSGD(p, lr=lr), 1.0),
         (lambda p, lr: TowerSGD(p, lr=lr, momentum=0.9), 0.1),
-        pytest.param(
-            lambda p, lr: TowerAdam(p, lr=lr),
-            1e-2,
-            marks=pytest.mark.xfail(
-                strict=True,
-                raises=AssertionError,
-                reason="measured at the Adam default horizon 0.999: 7.5e3x in 300 steps (1e4x at 0.99)",
-            ),
-        ),
+        # Adam: 7.5e3x at horizon 0.999 until the trail forgot steps taken at far larger rates.
+        (lambda p, lr: TowerAdam(p, lr=lr), 1e-2),
         (lambda p, lr: TowerAdam(p, lr=lr, horizon=0.99), 1e-2),
     ],
     ids=["sgd", "momentum", "adam", "adam-horizon-0.99"],
