@@ -13,6 +13,7 @@ collapse far below ``a*`` (the short-horizon bias of greedy hypergradients under
 from __future__ import annotations
 
 import functools
+from collections.abc import Callable
 
 import numpy as np
 import pytest
@@ -50,16 +51,22 @@ def best_fixed_step(noise: float) -> tuple[float, float]:
     return a, expected_loss(a, noise)
 
 
-def train(lr: float, noise: float, seed: int) -> tuple[float, float]:
-    """Final loss and final learned step size of TowerSGD (defaults) on one noisy run."""
+def run_noisy(make: Callable[..., torch.optim.Optimizer], lr: float, noise: float, seed: int) -> tuple[float, float]:
+    """Final loss and final step size of ``make([w], lr=lr)`` on one noisy run (its own defaults otherwise)."""
     gen = torch.Generator().manual_seed(seed)
     h = torch.tensor(CURVATURES)
     w = torch.nn.Parameter(torch.ones(DIM, dtype=torch.float64))
-    opt = TowerSGD([w], lr=lr)
+    opt = make([w], lr=lr)
     for _ in range(STEPS):
         w.grad = h * w.detach() + torch.randn(DIM, generator=gen, dtype=torch.float64) * (noise * h).sqrt()
         opt.step()
-    return float(0.5 * (h * w.detach() ** 2).sum()), opt.step_sizes()[0][0]
+    final_step = opt.step_sizes()[0][0] if hasattr(opt, "step_sizes") else lr
+    return float(0.5 * (h * w.detach() ** 2).sum()), final_step
+
+
+def train(lr: float, noise: float, seed: int) -> tuple[float, float]:
+    """Final loss and final learned step size of TowerSGD (defaults) on one noisy run."""
+    return run_noisy(TowerSGD, lr, noise, seed)
 
 
 def test_closed_form_matches_simulated_fixed_step_sgd() -> None:
@@ -95,17 +102,9 @@ ADAM_NOISE = 1.0
 ADAM_GRID = tuple(10.0 ** (k / 4) for k in range(-11, -4))  # 1.8e-3 ... 0.056
 
 
-def train_adam(make: type[torch.optim.Optimizer], lr: float, seed: int) -> tuple[float, float]:
-    """Final loss and final step size of ``make([w], lr=lr)`` on one noisy run (defaults otherwise)."""
-    gen = torch.Generator().manual_seed(seed)
-    h = torch.tensor(CURVATURES)
-    w = torch.nn.Parameter(torch.ones(DIM, dtype=torch.float64))
-    opt = make([w], lr=lr)
-    for _ in range(STEPS):
-        w.grad = h * w.detach() + torch.randn(DIM, generator=gen, dtype=torch.float64) * (ADAM_NOISE * h).sqrt()
-        opt.step()
-    final_step = opt.step_sizes()[0][0] if isinstance(opt, TowerAdam) else lr
-    return float(0.5 * (h * w.detach() ** 2).sum()), final_step
+def train_adam(make: Callable[..., torch.optim.Optimizer], lr: float, seed: int) -> tuple[float, float]:
+    """:func:`run_noisy` at :data:`ADAM_NOISE`."""
+    return run_noisy(make, lr, ADAM_NOISE, seed)
 
 
 @functools.lru_cache(maxsize=1)
