@@ -401,6 +401,17 @@ ADAM_OPTIONS: tuple[Option, ...] = (
         legacy=False,
     ),
     Option(
+        "native",
+        "on CPU, run the step in a C++ kernel (a read pass for the hypergradient, then one "
+        "multi-threaded loop that updates weights, moments and the trail together), built with "
+        "PyTorch's extension machinery on the first step and cached. Same results up to rounding; "
+        'needs float32/float64 parameters, ``granularity="group"``, ``horizon > 0``, a C++ compiler '
+        "and ninja, and uses the default path otherwise (one logged notice). "
+        "``STEPSIZE_TOWER_NATIVE=0`` turns it off",
+        _check_bool("native"),
+        legacy=False,
+    ),
+    Option(
         "first_step_limit",
         "with levels, the first step size is cut to ``min(a_0, first_step_limit * s)``, ``s`` the "
         "geometric mean over the group's nonzero tensors of their root-mean-square entry: an Adam step "
