@@ -81,7 +81,7 @@ class TowerAdam(TowerOptimizer):
         hyper_level: Level | None = None,
         sharded: bool | None = None,
         compiled: bool = False,
-        native: bool = False,
+        native: bool | str = False,
         first_step_limit: float | None = DEFAULT_FIRST_STEP_LIMIT,
         growth_search: float | None = None,
     ) -> None:

@@ -10,7 +10,7 @@ import torch
 from torch import Tensor
 from torch.optim.adam import adam as torch_adam
 
-from . import chunks, compiled, fused, masking, native
+from . import chunks, compiled, fused, lagged, masking, native
 from .adam_math import Beta, adam_denominator, adam_direction, betas_in_use, bias_corrections, update_moments
 from .buffers import keep
 from .grad import loss_grad
@@ -248,6 +248,10 @@ class AdamRule:
         kernels = self._kernels(group, params, grads, trails)
         if kernels is None:
             return None
+        if kernels is native and group["native"] == "lagged":
+            kept = lagged.recall(trails[0])
+            if kept is not None:  # h of the last step; NaN flags a non-finite gradient, as the exact dot would
+                return kept if native.all_finite(grads) else torch.full((), float("nan"), dtype=torch.float64)
         return kernels.trail_dot(  # type: ignore[no-any-return]
             grads,
             trails,
@@ -281,7 +285,8 @@ class AdamRule:
         beta1, beta2 = group["betas"]
         steps = [st["step"] for st in states]
         torch._foreach_add_(steps, 1)
-        kernels.adam_trail_update(
+        lag = kernels is native and group["native"] == "lagged"
+        h = kernels.adam_trail_update(
             params,
             grads,
             *moments,
@@ -295,7 +300,10 @@ class AdamRule:
             self.decoupled,
             group["maximize"],
             weight,
+            **({"with_dot": True} if lag else {}),
         )
+        if lag:
+            lagged.remember(trails[0], h)
         return True
 
 

@@ -52,7 +52,7 @@ from types import ModuleType
 import torch
 from torch import Tensor
 
-__all__ = ["ENV_SWITCH", "adam_trail_update", "applies", "available", "reset", "trail_dot"]
+__all__ = ["ENV_SWITCH", "adam_trail_update", "all_finite", "applies", "available", "reset", "trail_dot"]
 
 #: Environment variable: set to "0" to never build or use the native kernels.
 ENV_SWITCH = "STEPSIZE_TOWER_NATIVE"
@@ -185,6 +185,12 @@ def trail_dot(
     return _kernels().trail_dot(grads, trails, list(params) if params is not None else [], l2, bool(maximize))  # type: ignore[no-any-return]
 
 
+def all_finite(tensors: Sequence[Tensor]) -> bool:
+    """Whether every entry of the tensors is finite: one read pass (same tensor requirements)."""
+    tensors = list(tensors)
+    return bool(_kernels().all_finite(tensors)) if tensors else True
+
+
 def adam_trail_update(
     params: Sequence[Tensor],
     grads: Sequence[Tensor],
@@ -200,18 +206,23 @@ def adam_trail_update(
     decoupled: bool,
     maximize: bool,
     trail_weight: float,
-) -> None:
+    with_dot: bool = False,
+) -> Tensor | None:
     r"""One Adam/AdamW step with step size ``a`` and the trail update, in one pass, in place.
 
     ``steps``: per-tensor step counts, already incremented; ``decoupled=True`` is AdamW;
     ``trail_weight`` is :math:`\omega`. Same tensor requirements as :func:`trail_dot`.
+    With ``with_dot`` the same pass also returns :math:`h = \sum \langle \tilde g, E\rangle` of
+    the trails as they were before this update (0-dim float64, summed as :func:`trail_dot`
+    sums): the one-step-lagged variant, 36 instead of 44 bytes per float32 parameter.
     """
     params = list(params)
     if not params:
-        return
+        return torch.zeros((), dtype=torch.float64) if with_dot else None
     counts = [float(s) for s in steps]
-    _kernels().adam_update(
+    h = _kernels().adam_update(
         params, list(grads), list(exp_avgs), list(exp_avg_sqs), list(trails), counts, float(a),
         float(beta1), float(beta2), float(eps), float(weight_decay), bool(decoupled), bool(maximize),
-        float(trail_weight),
+        float(trail_weight), bool(with_dot),
     )  # fmt: skip
+    return torch.tensor(h, dtype=torch.float64) if with_dot else None

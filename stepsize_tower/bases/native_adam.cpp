@@ -1,7 +1,8 @@
 // Native CPU kernels for TowerAdam's trail step (see native.py for the math and the build).
 //
 // trail_dot:    h = sum_i <g~_i, E_i>, g~ = +-g (+ l2 w), float64 accumulation.
-// adam_update:  w, m, v and the trail E of every tensor updated in one pass.
+// adam_update:  w, m, v and the trail E of every tensor updated in one pass; optionally (the
+//               one-step-lagged variant) the same pass also returns h of the old trails.
 //
 // Work is split into fixed blocks of BLOCK elements per tensor, independent of the thread
 // count; at::parallel_for hands out whole blocks. The dot product keeps one float64 partial
@@ -127,7 +128,60 @@ double dot_dispatch(const std::vector<at::Tensor>& gs, const std::vector<at::Ten
   return has_l2 ? dot_all<T, false, true>(gs, es, ws, l2) : dot_all<T, false, false>(gs, es, ws, l2);
 }
 
+// Whether every entry is finite: x - x is 0 for a finite x and NaN for inf or NaN.
+template <typename T>
+bool all_finite_of(const std::vector<at::Tensor>& gs) {
+  using V = at::vec::Vectorized<T>;
+  const auto blocks = blocks_of(gs);
+  std::vector<char> ok(blocks.size(), 1);
+  for_blocks(blocks, [&](int64_t k, const Block& b) {
+    const T* g = gs[b.tensor].data_ptr<T>();
+    V acc(static_cast<T>(0));
+    for (int64_t j = b.begin; j < b.end; j += V::size()) {
+      const V x = V::loadu(g + j, std::min<int64_t>(V::size(), b.end - j));
+      acc = acc + (x - x);
+    }
+    T lanes[V::size()];
+    acc.store(lanes);
+    for (int64_t i = 0; i < V::size(); ++i) ok[k] = ok[k] && lanes[i] == static_cast<T>(0);
+  });
+  for (char x : ok) {
+    if (!x) return false;
+  }
+  return true;
+}
+
 // ----------------------------------------------------------------------------- update
+
+// float64 sum of exact products of two vectors (zero-padded tails add 0), 8 lanes in a fixed order.
+template <typename T>
+struct DotAcc {
+  double lanes[8] = {0, 0, 0, 0, 0, 0, 0, 0};
+
+  void add(const at::vec::Vectorized<T>& g, const at::vec::Vectorized<T>& e) {
+#if defined(CPU_CAPABILITY_AVX2)
+    if constexpr (std::is_same_v<T, float>) {
+      const __m256 gv = g, ev = e;
+      const __m256d lo = _mm256_mul_pd(_mm256_cvtps_pd(_mm256_castps256_ps128(gv)),
+                                       _mm256_cvtps_pd(_mm256_castps256_ps128(ev)));
+      const __m256d hi = _mm256_mul_pd(_mm256_cvtps_pd(_mm256_extractf128_ps(gv, 1)),
+                                       _mm256_cvtps_pd(_mm256_extractf128_ps(ev, 1)));
+      _mm256_storeu_pd(lanes, _mm256_add_pd(_mm256_loadu_pd(lanes), lo));
+      _mm256_storeu_pd(lanes + 4, _mm256_add_pd(_mm256_loadu_pd(lanes + 4), hi));
+      return;
+    }
+#endif
+    constexpr int64_t W = at::vec::Vectorized<T>::size();
+    T gs[W], es[W];
+    g.store(gs);
+    e.store(es);
+    for (int64_t k = 0; k < W; ++k) lanes[k % 8] += static_cast<double>(gs[k]) * static_cast<double>(es[k]);
+  }
+
+  double sum() const {
+    return ((lanes[0] + lanes[1]) + (lanes[2] + lanes[3])) + ((lanes[4] + lanes[5]) + (lanes[6] + lanes[7]));
+  }
+};
 
 // Per-tensor coefficients, computed in float64 and rounded once to T.
 template <typename T>
@@ -150,13 +204,16 @@ Coef<T> coef_of(double a, double step, const Hyper& h) {
 }
 
 // One vector (or the zero-padded tail) of one tensor, in torch.optim.Adam's order of operations.
+// With ``acc`` (the lagged variant), also adds <g~, E> of the old trail to it.
 template <typename T>
-void update_vec(T* wp, const T* gp, T* mp, T* vp, T* ep, int64_t count, const Coef<T>& c, const Hyper& h) {
+void update_vec(T* wp, const T* gp, T* mp, T* vp, T* ep, int64_t count, const Coef<T>& c, const Hyper& h,
+                DotAcc<T>* acc) {
   using V = at::vec::Vectorized<T>;
   V w = V::loadu(wp, count), g = V::loadu(gp, count), m = V::loadu(mp, count);
   V v = V::loadu(vp, count), e = V::loadu(ep, count);
   if (h.maximize) g = g.neg();
   if (!h.decoupled && h.weight_decay != 0.0) g = g + V(static_cast<T>(h.weight_decay)) * w;
+  if (acc != nullptr) acc->add(g, e);
   m = m + V(static_cast<T>(1.0 - h.beta1)) * (g - m);
   v = v * V(static_cast<T>(h.beta2)) + V(static_cast<T>(1.0 - h.beta2)) * g * g;
   const V denom = v.sqrt() / V(c.bc2_sqrt) + V(static_cast<T>(h.eps));
@@ -176,23 +233,32 @@ void update_vec(T* wp, const T* gp, T* mp, T* vp, T* ep, int64_t count, const Co
   e.store(ep, count);
 }
 
+// Returns sum_i <g~_i, E_i> of the old trails when ``with_dot`` (block sums in block order), else 0.
 template <typename T>
-void update_all(std::vector<at::Tensor>& ws, const std::vector<at::Tensor>& gs, std::vector<at::Tensor>& ms,
-                std::vector<at::Tensor>& vs, std::vector<at::Tensor>& es, const std::vector<double>& steps,
-                double a, const Hyper& h) {
+double update_all(std::vector<at::Tensor>& ws, const std::vector<at::Tensor>& gs, std::vector<at::Tensor>& ms,
+                  std::vector<at::Tensor>& vs, std::vector<at::Tensor>& es, const std::vector<double>& steps,
+                  double a, const Hyper& h, bool with_dot) {
   std::vector<Coef<T>> coefs;
   for (double s : steps) coefs.push_back(coef_of<T>(a, s, h));
   constexpr int64_t W = at::vec::Vectorized<T>::size();
-  for_blocks(blocks_of(ws), [&](int64_t, const Block& b) {
+  const auto blocks = blocks_of(ws);
+  std::vector<double> partial(blocks.size(), 0.0);
+  for_blocks(blocks, [&](int64_t k, const Block& b) {
     const int64_t i = b.tensor;
     T* w = ws[i].data_ptr<T>();
     const T* g = gs[i].data_ptr<T>();
     T *m = ms[i].data_ptr<T>(), *v = vs[i].data_ptr<T>(), *e = es[i].data_ptr<T>();
+    DotAcc<T> acc;
+    DotAcc<T>* accp = with_dot ? &acc : nullptr;
     for (int64_t j = b.begin; j < b.end; j += W) {
       const int64_t count = std::min(W, b.end - j);
-      update_vec<T>(w + j, g + j, m + j, v + j, e + j, count, coefs[i], h);
+      update_vec<T>(w + j, g + j, m + j, v + j, e + j, count, coefs[i], h, accp);
     }
+    partial[k] = acc.sum();
   });
+  double total = 0.0;
+  for (double x : partial) total += x;
+  return total;
 }
 
 // ----------------------------------------------------------------------------- checks
@@ -231,25 +297,31 @@ at::Tensor trail_dot(const std::vector<at::Tensor>& grads, const std::vector<at:
   return at::scalar_tensor(h, at::TensorOptions().dtype(at::kDouble));
 }
 
-void adam_update(std::vector<at::Tensor> params, const std::vector<at::Tensor>& grads,
+double adam_update(std::vector<at::Tensor> params, const std::vector<at::Tensor>& grads,
                  std::vector<at::Tensor> exp_avgs, std::vector<at::Tensor> exp_avg_sqs,
                  std::vector<at::Tensor> trails, const std::vector<double>& steps, double a, double beta1,
                  double beta2, double eps, double weight_decay, bool decoupled, bool maximize,
-                 double trail_weight) {
+                 double trail_weight, bool with_dot) {
   check_lists(params, {grads, exp_avgs, exp_avg_sqs, trails});
   TORCH_CHECK(steps.size() == params.size(), "stepsize_tower native kernel: ", steps.size(),
               " step counts for ", params.size(), " tensors");
   const Hyper h{beta1, beta2, eps, weight_decay, trail_weight, decoupled, maximize};
   if (params[0].scalar_type() == at::kFloat) {
-    update_all<float>(params, grads, exp_avgs, exp_avg_sqs, trails, steps, a, h);
-  } else {
-    update_all<double>(params, grads, exp_avgs, exp_avg_sqs, trails, steps, a, h);
+    return update_all<float>(params, grads, exp_avgs, exp_avg_sqs, trails, steps, a, h, with_dot);
   }
+  return update_all<double>(params, grads, exp_avgs, exp_avg_sqs, trails, steps, a, h, with_dot);
+}
+
+bool all_finite(const std::vector<at::Tensor>& grads) {
+  check_lists(grads, {grads});
+  return grads[0].scalar_type() == at::kFloat ? all_finite_of<float>(grads) : all_finite_of<double>(grads);
 }
 
 }  // namespace
 
 PYBIND11_MODULE(TORCH_EXTENSION_NAME, mod) {
   mod.def("trail_dot", &trail_dot, "sum_i <g~_i, E_i> in float64 (deterministic block order)");
-  mod.def("adam_update", &adam_update, "Adam/AdamW step with the trail update, one pass");
+  mod.def("all_finite", &all_finite, "whether every entry of the tensors is finite (one read pass)");
+  mod.def("adam_update", &adam_update,
+          "Adam/AdamW step with the trail update, one pass; with_dot: also sum_i <g~_i, E_i> (old trails)");
 }
