@@ -252,7 +252,8 @@ class AdamRule:
             kept = lagged.recall(trails[0])
             if kept is not None:  # h of the last step; NaN flags a non-finite gradient, as the exact dot would
                 return kept if native.all_finite(grads) else torch.full((), float("nan"), dtype=torch.float64)
-        return kernels.trail_dot(  # type: ignore[no-any-return]
+        dot = native.trail_dot if kernels is native else compiled.two_pass_dot
+        return dot(
             grads,
             trails,
             params=params,
