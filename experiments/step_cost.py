@@ -3,7 +3,8 @@
 What it measures
     * The median wall time (and interquartile range) of ``optimizer.step()`` alone for
       torch ``Adam`` (foreach and fused), ``TowerAdam`` at depth 0-3 (and with
-      ``compiled=True`` where torch.compile works), ``TowerAdamW``
+      ``compiled=True`` where torch.compile works, ``native=True`` where the native C++
+      kernel builds), ``TowerAdamW``
       (default depth), torch ``SGD(momentum=0.9)`` (foreach, and fused where torch
       supports it on this device) and ``TowerSGD(momentum=0.9)`` at depth 0 and the
       default depth. Parameters are float32, split like a model: a stack of square
@@ -71,6 +72,7 @@ from torch import Tensor, nn
 import stepsize_tower
 from stepsize_tower import DEFAULT_DEPTH, TowerAdam, TowerAdamW, TowerSGD
 from stepsize_tower.bases import compiled as _compiled
+from stepsize_tower.bases import native as _native
 
 ADAM_LR = 1e-3
 MIN_REPEATS = 5
@@ -102,6 +104,7 @@ def environment() -> dict[str, Any]:
         "cpu_model": cpu_model(),
         "default_depth": DEFAULT_DEPTH,
         "platform": platform.platform(),
+        "load_average_start": os.getloadavg(),
     }
 
 
@@ -142,6 +145,9 @@ def optimizer_specs() -> list[Spec]:
     specs.append(Spec(f"TowerAdamW d{DEFAULT_DEPTH} (default)", "adam", lambda ps: TowerAdamW(ps, lr=ADAM_LR)))
     if _compiled.available():
         specs.append(Spec("TowerAdam compiled=True", "adam", lambda ps: TowerAdam(ps, lr=ADAM_LR, compiled=True)))
+    if _native.available():  # builds the kernel on the first run (tens of seconds), then loads it
+        specs.append(Spec("TowerAdam native=True", "adam", lambda ps: TowerAdam(ps, lr=ADAM_LR, native=True)))
+        specs.append(Spec('TowerAdam native="lagged"', "adam", lambda ps: TowerAdam(ps, lr=ADAM_LR, native="lagged")))
     specs.append(
         Spec(
             "torch SGD foreach",
@@ -326,6 +332,8 @@ def bench_end_to_end(dims: list[int], batch: int, warmup: int, repeats: int, see
     }
     if _compiled.available() and sum(dims[i] * dims[i + 1] for i in range(len(dims) - 1)) >= 1e6:
         makers["TowerAdam compiled=True"] = lambda ps: TowerAdam(ps, lr=ADAM_LR, compiled=True)
+    if _native.available():
+        makers["TowerAdam native=True"] = lambda ps: TowerAdam(ps, lr=ADAM_LR, native=True)
     makers["torch SGD(momentum) fused"] = lambda ps: torch.optim.SGD(ps, lr=SGD_LR, momentum=MOMENTUM, fused=True)
     makers[f"TowerSGD(momentum) d{DEFAULT_DEPTH} (default)"] = lambda ps: TowerSGD(ps, lr=SGD_LR, momentum=MOMENTUM)
     actions: dict[str, Callable[[], Any]] = {}
@@ -362,15 +370,16 @@ def human(n: float) -> str:
     return f"{n:.0f}"
 
 
-def ratio(results: dict[str, Any], a: str | None, b: str | None) -> float | None:
+def ratio(results: dict[str, Any], a: str | None, b: str | None, key: str = "median_ms") -> float | None:
     if a is None or b is None or a not in results or b not in results:
         return None
-    return results[a]["median_ms"] / results[b]["median_ms"]
+    return results[a][key] / results[b][key]
 
 
 def ratios_for(rows: dict[str, Any]) -> dict[str, float | None]:
     names = list(rows)
     tower = find(names, f"TowerAdam d{DEFAULT_DEPTH}")
+    lag = find(names, 'TowerAdam native="')
     out: dict[str, float | None] = {
         "TowerAdam default / torch Adam fused": ratio(rows, tower, "torch Adam fused"),
         "TowerAdam default / torch Adam foreach": ratio(rows, tower, "torch Adam foreach"),
@@ -378,7 +387,14 @@ def ratios_for(rows: dict[str, Any]) -> dict[str, float | None]:
         "TowerAdamW default / torch Adam fused": ratio(rows, find(names, "TowerAdamW"), "torch Adam fused"),
         "TowerAdam compiled / torch Adam fused": ratio(rows, find(names, "TowerAdam compiled"), "torch Adam fused"),
         "TowerAdam compiled / torch Adam foreach": ratio(rows, find(names, "TowerAdam compiled"), "torch Adam foreach"),
+        "TowerAdam native / torch Adam fused": ratio(rows, find(names, "TowerAdam native=T"), "torch Adam fused"),
+        "TowerAdam native / torch Adam foreach": ratio(rows, find(names, "TowerAdam native=T"), "torch Adam foreach"),
+        "TowerAdam native lagged / torch Adam fused": ratio(rows, lag, "torch Adam fused"),
     }
+    # Minimums: a steadier lower bound than medians on a shared machine.
+    native_runs = (("TowerAdam native", find(names, "TowerAdam native=T")), ("TowerAdam native lagged", lag))
+    for label, name in (("TowerAdam default", tower), *native_runs):
+        out[f"{label} / torch Adam fused (minimums)"] = ratio(rows, name, "torch Adam fused", "min_ms")
     for k in range(3):
         lo, hi = find(names, f"TowerAdam d{k}"), find(names, f"TowerAdam d{k + 1}")
         r = ratio(rows, hi, lo)
@@ -394,6 +410,10 @@ def fmt(x: float | None, spec: str = ".2f") -> str:
     return "n/a" if x is None else format(x, spec)
 
 
+def _loads(triple: Any) -> str:
+    return "n/a" if not triple else "/".join(f"{x:.2f}" for x in triple)
+
+
 def markdown(report: dict[str, Any]) -> str:
     env, sizes = report["environment"], report["sizes"]
     lines = [
@@ -403,9 +423,10 @@ def markdown(report: dict[str, Any]) -> str:
         f"({env['cpu_count']} logical cores); stepsize_tower {env['stepsize_tower']}, "
         f"default depth {env['default_depth']}. Warm-up {report['config']['warmup']} steps, then "
         f"n timed steps per optimizer (in the column header), round-robin in one process. "
-        f"Peak RSS {report.get('peak_rss_mb', 0):.0f} MB.",
+        f"Peak RSS {report.get('peak_rss_mb', 0):.0f} MB. Load average (1/5/15 min) at the start "
+        f"{_loads(env.get('load_average_start'))}, at the end {_loads(env.get('load_average_end'))}.",
         "",
-        "## step() time, median ms (IQR)",
+        "## step() time, median ms (IQR) and minimum",
         "",
     ]
     header = ["optimizer"] + [
@@ -417,13 +438,15 @@ def markdown(report: dict[str, Any]) -> str:
         cells = [name]
         for s in sizes:
             r = s["optimizers"][name]
-            cells.append(f"{r['median_ms']:.3g} ({r['iqr_ms']:.2g})")
+            cells.append(f"{r['median_ms']:.3g} ({r['iqr_ms']:.2g}), min {r['min_ms']:.3g}")
         lines.append("| " + " | ".join(cells) + " |")
 
     lines += ["", "## Ratios of medians", "", "| ratio | " + " | ".join(human(s["params"]) for s in sizes) + " |"]
     lines.append("|" + "---|" * (len(sizes) + 1))
     keys = list(sizes[0]["ratios"]) if sizes else []
     for key in keys:
+        if all(s["ratios"][key] is None for s in sizes):
+            continue  # a contender left out (--only) or unavailable here
         lines.append("| " + key + " | " + " | ".join(fmt(s["ratios"][key]) for s in sizes) + " |")
 
     lines += [
@@ -536,6 +559,13 @@ def parse_args(argv: list[str] | None = None) -> argparse.Namespace:
     ap.add_argument("--threads", type=int, default=None, help="torch.set_num_threads (default: torch's choice)")
     ap.add_argument("--seed", type=int, default=0)
     ap.add_argument("--out", type=Path, default=Path("experiments/out/step_cost"))
+    ap.add_argument(
+        "--only",
+        nargs="+",
+        default=None,
+        help='time only the optimizers whose names start with one of these, e.g. --only "torch Adam" '
+        '"TowerAdam d1" "TowerAdam native" (default: all)',
+    )
     ap.add_argument("--quick", action="store_true", help="smoke test: small sizes, few repeats, small MLP")
     return ap.parse_args(argv)
 
@@ -548,7 +578,7 @@ def main(argv: list[str] | None = None) -> dict[str, Any]:
         args.sizes, args.repeats, args.warmup, args.e2e_repeats = [1e5, 3e5], 5, 2, 5
     e2e_dims = [256, 512, 512, 256, 10] if args.quick else [1536, 2048, 2048, 1536, 10]
     sizes = sorted(int(s) for s in args.sizes)
-    specs = optimizer_specs()
+    specs = [s for s in optimizer_specs() if not args.only or any(s.name.startswith(p) for p in args.only)]
     report: dict[str, Any] = {
         "environment": environment(),
         "config": {
@@ -584,6 +614,7 @@ def main(argv: list[str] | None = None) -> dict[str, Any]:
         ]
         print(f"[step_cost] end-to-end MLP: {time.perf_counter() - t0:.1f} s", file=sys.stderr)
     report["elapsed_s"] = time.perf_counter() - t_start
+    report["environment"]["load_average_end"] = os.getloadavg()
     report["peak_rss_mb"] = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024  # KiB on Linux
 
     args.out.mkdir(parents=True, exist_ok=True)

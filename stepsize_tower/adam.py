@@ -81,6 +81,7 @@ class TowerAdam(TowerOptimizer):
         hyper_level: Level | None = None,
         sharded: bool | None = None,
         compiled: bool = False,
+        native: bool | str = False,
         first_step_limit: float | None = DEFAULT_FIRST_STEP_LIMIT,
         growth_search: float | None = None,
     ) -> None:
@@ -101,6 +102,7 @@ class TowerAdam(TowerOptimizer):
             "hyper_level": hyper_level or DEFAULT_HYPER_LEVEL,
             "sharded": sharded,
             "compiled": compiled,
+            "native": native,
             "first_step_limit": first_step_limit,
             "growth_search": growth_search,
         }

@@ -3,13 +3,14 @@
 from __future__ import annotations
 
 from collections.abc import Sequence
+from types import ModuleType
 from typing import Any
 
 import torch
 from torch import Tensor
 from torch.optim.adam import adam as torch_adam
 
-from . import chunks, compiled, fused, masking
+from . import chunks, compiled, fused, lagged, masking, native
 from .adam_math import Beta, adam_denominator, adam_direction, betas_in_use, bias_corrections, update_moments
 from .buffers import keep
 from .grad import loss_grad
@@ -227,27 +228,32 @@ class AdamRule:
         else:
             p.add_(u * (a_prev - a_new).to(p.dtype))
 
-    # ------------------------------------------------------------ compiled trail (opt-in)
+    # ------------------------------------------------------------ compiled / native trail (opt-in)
 
-    def _compiled_applies(self, group: dict[str, Any], params: list[Tensor]) -> bool:
-        """``compiled=True``, one step size for the group, float32 CPU/CUDA tensors, and a compiler."""
-        return (
-            bool(group.get("compiled"))
-            and not group.get("learn_betas")
-            and group["granularity"] == "group"
-            and bool(params)
-            and all(p.dtype == torch.float32 and p.device.type in ("cpu", "cuda") for p in params)
-            and len({p.device for p in params}) == 1
-            and compiled.available()
-        )
+    def _kernels(self, group: dict[str, Any], params: list[Tensor], *others: list[Tensor]) -> ModuleType | None:
+        """The kernel module of the step: :mod:`.native` (``native=True``, CPU) or :mod:`.compiled`
+        (``compiled=True``), where it applies to these tensors; None for the default path."""
+        if group.get("learn_betas") or group["granularity"] != "group" or not params:
+            return None
+        if group.get("native") and native.applies(params, *others):
+            return native
+        if group.get("compiled") and _compiled_tensors(params) and compiled.available():
+            return compiled
+        return None
 
     def trail_dot(
         self, group: dict[str, Any], params: list[Tensor], grads: list[Tensor], trails: list[Tensor]
     ) -> Tensor | None:
-        """``Σ <g_s, E>`` over the group in one compiled read pass, or None where that does not apply."""
-        if not self._compiled_applies(group, params):
+        """``Σ <g_s, E>`` over the group in one read pass of the kernel, or None where none applies."""
+        kernels = self._kernels(group, params, grads, trails)
+        if kernels is None:
             return None
-        return compiled.two_pass_dot(
+        if kernels is native and group["native"] == "lagged":
+            kept = lagged.recall(trails[0])
+            if kept is not None:  # h of the last step; NaN flags a non-finite gradient, as the exact dot would
+                return kept if native.all_finite(grads) else torch.full((), float("nan"), dtype=torch.float64)
+        dot = native.trail_dot if kernels is native else compiled.two_pass_dot
+        return dot(
             grads,
             trails,
             params=params,
@@ -266,23 +272,25 @@ class AdamRule:
         a0: Tensor,
         weight: float,
     ) -> bool:
-        """The Adam step with step size ``a0`` and ``E <- (1 - weight) E + weight a0 d`` in one compiled pass.
+        """The Adam step with step size ``a0`` and ``E <- (1 - weight) E + weight a0 d`` in one kernel pass.
 
-        Returns False (and changes nothing but the lazily created moments) where the compiled
-        kernel does not apply; the engine then takes the default update plus the trail's passes.
+        Returns False (and changes nothing but the lazily created moments) where no kernel
+        applies; the engine then takes the default update plus the trail's passes.
         """
         for p, st in zip(params, states, strict=True):
             _init(p, st)
-        if not self._compiled_applies(group, params):
+        moments = [st["exp_avg"] for st in states], [st["exp_avg_sq"] for st in states]
+        kernels = self._kernels(group, params, grads, *moments, trails)
+        if kernels is None:
             return False
         beta1, beta2 = group["betas"]
         steps = [st["step"] for st in states]
         torch._foreach_add_(steps, 1)
-        compiled.adam_trail_update(
+        lag = kernels is native and group["native"] == "lagged"
+        h = kernels.adam_trail_update(
             params,
             grads,
-            [st["exp_avg"] for st in states],
-            [st["exp_avg_sq"] for st in states],
+            *moments,
             trails,
             steps,
             a0,
@@ -293,8 +301,18 @@ class AdamRule:
             self.decoupled,
             group["maximize"],
             weight,
+            **({"with_dot": True} if lag else {}),
         )
+        if lag:
+            lagged.remember(trails[0], h)
         return True
+
+
+def _compiled_tensors(params: list[Tensor]) -> bool:
+    """float32 tensors on one CPU or CUDA device (what the compiled kernels take)."""
+    return all(p.dtype == torch.float32 and p.device.type in ("cpu", "cuda") for p in params) and (
+        len({p.device for p in params}) == 1
+    )
 
 
 def _keep_tangents(

@@ -1,0 +1,340 @@
+// Native CPU kernels for TowerAdam's trail step (see native.py for the math and the build).
+//
+// trail_dot:    h = sum_i <g~_i, E_i>, g~ = +-g (+ l2 w), float64 accumulation.
+// adam_update:  w, m, v and the trail E of every tensor updated in one pass; optionally (the
+//               one-step-lagged variant) the same pass also returns h of the old trails.
+//
+// Work is split into fixed blocks of BLOCK elements per tensor, independent of the thread
+// count; at::parallel_for hands out whole blocks. The dot product keeps one float64 partial
+// sum per block and adds them in block order, so its result does not depend on the number
+// of threads.
+#include <torch/extension.h>
+
+#include <ATen/Parallel.h>
+#include <ATen/cpu/vec/vec.h>
+
+#if defined(CPU_CAPABILITY_AVX2)
+#include <immintrin.h>
+#endif
+
+#include <cmath>
+#include <type_traits>
+#include <vector>
+
+namespace {
+
+constexpr int64_t BLOCK = 1 << 15;
+
+struct Block {
+  int64_t tensor;
+  int64_t begin;
+  int64_t end;
+};
+
+std::vector<Block> blocks_of(const std::vector<at::Tensor>& ts) {
+  std::vector<Block> out;
+  for (int64_t i = 0; i < static_cast<int64_t>(ts.size()); ++i) {
+    const int64_t n = ts[i].numel();
+    for (int64_t b = 0; b < n; b += BLOCK) {
+      out.push_back({i, b, std::min(n, b + BLOCK)});
+    }
+  }
+  return out;
+}
+
+template <typename F>
+void for_blocks(const std::vector<Block>& blocks, const F& f) {
+  at::parallel_for(0, static_cast<int64_t>(blocks.size()), 1, [&](int64_t lo, int64_t hi) {
+    for (int64_t k = lo; k < hi; ++k) f(k, blocks[k]);
+  });
+}
+
+// ----------------------------------------------------------------------------- dot product
+
+#if defined(CPU_CAPABILITY_AVX2)
+// float32 with AVX2: 16 elements a round, widened to float64 (exact products), 4 accumulators.
+template <bool MAXIMIZE, bool L2>
+int64_t float_dot_avx2(const float* g, const float* e, const float* w, float l2, int64_t n, double* acc8) {
+  __m256d acc[4] = {_mm256_setzero_pd(), _mm256_setzero_pd(), _mm256_setzero_pd(), _mm256_setzero_pd()};
+  const __m256 l2v = _mm256_set1_ps(l2), sign = _mm256_set1_ps(-0.0f);
+  int64_t j = 0;
+  for (; j + 16 <= n; j += 16) {
+    for (int h = 0; h < 2; ++h) {
+      __m256 gv = _mm256_loadu_ps(g + j + 8 * h);
+      if (MAXIMIZE) gv = _mm256_xor_ps(gv, sign);
+      if (L2) gv = _mm256_add_ps(gv, _mm256_mul_ps(l2v, _mm256_loadu_ps(w + j + 8 * h)));
+      const __m256 ev = _mm256_loadu_ps(e + j + 8 * h);
+      const __m256d lo = _mm256_mul_pd(_mm256_cvtps_pd(_mm256_castps256_ps128(gv)),
+                                       _mm256_cvtps_pd(_mm256_castps256_ps128(ev)));
+      const __m256d hi = _mm256_mul_pd(_mm256_cvtps_pd(_mm256_extractf128_ps(gv, 1)),
+                                       _mm256_cvtps_pd(_mm256_extractf128_ps(ev, 1)));
+      acc[2 * h] = _mm256_add_pd(acc[2 * h], lo);
+      acc[2 * h + 1] = _mm256_add_pd(acc[2 * h + 1], hi);
+    }
+  }
+  double lanes[16];
+  for (int k = 0; k < 4; ++k) _mm256_storeu_pd(lanes + 4 * k, acc[k]);
+  for (int k = 0; k < 8; ++k) acc8[k] = lanes[k] + lanes[k + 8];
+  return j;
+}
+#endif
+
+// Exact products of T values in float64, 8 independent accumulators added in a fixed order.
+template <typename T, bool MAXIMIZE, bool L2>
+double block_dot(const T* g, const T* e, const T* w, T l2, int64_t n) {
+  double acc[8] = {0, 0, 0, 0, 0, 0, 0, 0};
+  int64_t j = 0;
+#if defined(CPU_CAPABILITY_AVX2)
+  if constexpr (std::is_same_v<T, float>) j = float_dot_avx2<MAXIMIZE, L2>(g, e, w, l2, n, acc);
+#endif
+  for (; j + 8 <= n; j += 8) {
+    for (int k = 0; k < 8; ++k) {
+      T gk = MAXIMIZE ? -g[j + k] : g[j + k];
+      if (L2) gk = gk + l2 * w[j + k];
+      acc[k] += static_cast<double>(gk) * static_cast<double>(e[j + k]);
+    }
+  }
+  for (int k = 0; j < n; ++j, ++k) {
+    T gk = MAXIMIZE ? -g[j] : g[j];
+    if (L2) gk = gk + l2 * w[j];
+    acc[k] += static_cast<double>(gk) * static_cast<double>(e[j]);
+  }
+  return ((acc[0] + acc[1]) + (acc[2] + acc[3])) + ((acc[4] + acc[5]) + (acc[6] + acc[7]));
+}
+
+template <typename T, bool MAXIMIZE, bool L2>
+double dot_all(const std::vector<at::Tensor>& gs, const std::vector<at::Tensor>& es,
+               const std::vector<at::Tensor>& ws, double l2) {
+  const auto blocks = blocks_of(gs);
+  std::vector<double> partial(blocks.size(), 0.0);
+  for_blocks(blocks, [&](int64_t k, const Block& b) {
+    const T* w = L2 ? ws[b.tensor].data_ptr<T>() + b.begin : nullptr;
+    partial[k] = block_dot<T, MAXIMIZE, L2>(gs[b.tensor].data_ptr<T>() + b.begin,
+                                            es[b.tensor].data_ptr<T>() + b.begin, w,
+                                            static_cast<T>(l2), b.end - b.begin);
+  });
+  double total = 0.0;
+  for (double x : partial) total += x;  // block order: independent of the thread count
+  return total;
+}
+
+template <typename T>
+double dot_dispatch(const std::vector<at::Tensor>& gs, const std::vector<at::Tensor>& es,
+                    const std::vector<at::Tensor>& ws, double l2, bool maximize) {
+  const bool has_l2 = l2 != 0.0;
+  if (maximize) {
+    return has_l2 ? dot_all<T, true, true>(gs, es, ws, l2) : dot_all<T, true, false>(gs, es, ws, l2);
+  }
+  return has_l2 ? dot_all<T, false, true>(gs, es, ws, l2) : dot_all<T, false, false>(gs, es, ws, l2);
+}
+
+// Whether every entry is finite: x - x is 0 for a finite x and NaN for inf or NaN.
+template <typename T>
+bool all_finite_of(const std::vector<at::Tensor>& gs) {
+  using V = at::vec::Vectorized<T>;
+  const auto blocks = blocks_of(gs);
+  std::vector<char> ok(blocks.size(), 1);
+  for_blocks(blocks, [&](int64_t k, const Block& b) {
+    const T* g = gs[b.tensor].data_ptr<T>();
+    V acc(static_cast<T>(0));
+    for (int64_t j = b.begin; j < b.end; j += V::size()) {
+      const V x = V::loadu(g + j, std::min<int64_t>(V::size(), b.end - j));
+      acc = acc + (x - x);
+    }
+    T lanes[V::size()];
+    acc.store(lanes);
+    for (int64_t i = 0; i < V::size(); ++i) ok[k] = ok[k] && lanes[i] == static_cast<T>(0);
+  });
+  for (char x : ok) {
+    if (!x) return false;
+  }
+  return true;
+}
+
+// ----------------------------------------------------------------------------- update
+
+// float64 sum of exact products of two vectors (zero-padded tails add 0), 8 lanes in a fixed order.
+template <typename T>
+struct DotAcc {
+  double lanes[8] = {0, 0, 0, 0, 0, 0, 0, 0};
+
+  void add(const at::vec::Vectorized<T>& g, const at::vec::Vectorized<T>& e) {
+    constexpr int64_t W = at::vec::Vectorized<T>::size();
+    T gs[W], es[W];
+    g.store(gs);
+    e.store(es);
+    for (int64_t k = 0; k < W; ++k) lanes[k % 8] += static_cast<double>(gs[k]) * static_cast<double>(es[k]);
+  }
+
+  double sum() const {
+    return ((lanes[0] + lanes[1]) + (lanes[2] + lanes[3])) + ((lanes[4] + lanes[5]) + (lanes[6] + lanes[7]));
+  }
+};
+
+#if defined(CPU_CAPABILITY_AVX2)
+// float32 with AVX2: the same 8 lanes, kept in two registers.
+template <>
+struct DotAcc<float> {
+  __m256d lo = _mm256_setzero_pd(), hi = _mm256_setzero_pd();
+
+  void add(const at::vec::Vectorized<float>& g, const at::vec::Vectorized<float>& e) {
+    const __m256 gv = g, ev = e;
+    lo = _mm256_add_pd(lo, _mm256_mul_pd(_mm256_cvtps_pd(_mm256_castps256_ps128(gv)),
+                                         _mm256_cvtps_pd(_mm256_castps256_ps128(ev))));
+    hi = _mm256_add_pd(hi, _mm256_mul_pd(_mm256_cvtps_pd(_mm256_extractf128_ps(gv, 1)),
+                                         _mm256_cvtps_pd(_mm256_extractf128_ps(ev, 1))));
+  }
+
+  double sum() const {
+    double l[8];
+    _mm256_storeu_pd(l, lo);
+    _mm256_storeu_pd(l + 4, hi);
+    return ((l[0] + l[1]) + (l[2] + l[3])) + ((l[4] + l[5]) + (l[6] + l[7]));
+  }
+};
+#endif
+
+// Per-tensor coefficients, computed in float64 and rounded once to T.
+template <typename T>
+struct Coef {
+  T step_size;  // a / (1 - beta1^t)
+  T bc2_sqrt;   // sqrt(1 - beta2^t)
+  T decay;      // a * lambda (AdamW), else 0
+};
+
+struct Hyper {
+  double beta1, beta2, eps, weight_decay, trail_weight;
+  bool decoupled, maximize;
+};
+
+template <typename T>
+Coef<T> coef_of(double a, double step, const Hyper& h) {
+  const double decay = h.decoupled ? a * h.weight_decay : 0.0;
+  return {static_cast<T>(a / (1.0 - std::pow(h.beta1, step))),
+          static_cast<T>(std::sqrt(1.0 - std::pow(h.beta2, step))), static_cast<T>(decay)};
+}
+
+// One vector (or the zero-padded tail) of one tensor, in torch.optim.Adam's order of operations.
+// With ``acc`` (the lagged variant), also adds <g~, E> of the old trail to it.
+template <typename T>
+void update_vec(T* wp, const T* gp, T* mp, T* vp, T* ep, int64_t count, const Coef<T>& c, const Hyper& h,
+                DotAcc<T>* acc) {
+  using V = at::vec::Vectorized<T>;
+  V w = V::loadu(wp, count), g = V::loadu(gp, count), m = V::loadu(mp, count);
+  V v = V::loadu(vp, count), e = V::loadu(ep, count);
+  if (h.maximize) g = g.neg();
+  if (!h.decoupled && h.weight_decay != 0.0) g = g + V(static_cast<T>(h.weight_decay)) * w;
+  if (acc != nullptr) acc->add(g, e);
+  // Multiply-adds (fused where the ISA has them, as torch's lerp): with |g| < 1e-19 (float32),
+  // g*g alone would be subnormal, which costs the CPU a slow path on every element.
+  m = at::vec::fmadd(V(static_cast<T>(1.0 - h.beta1)), g - m, m);
+  v = at::vec::fmadd(V(static_cast<T>(1.0 - h.beta2)) * g, g, v * V(static_cast<T>(h.beta2)));
+  const V denom = v.sqrt() / V(c.bc2_sqrt) + V(static_cast<T>(h.eps));
+  const V u = V(c.step_size) * (m / denom);
+  V delta = u;
+  if (h.decoupled && h.weight_decay != 0.0) {
+    delta = u + V(c.decay) * w;
+    w = w * V(static_cast<T>(1) - c.decay) - u;
+  } else {
+    w = w - u;
+  }
+  const T omega = static_cast<T>(h.trail_weight);
+  e = e * V(static_cast<T>(1) - omega) + V(omega) * delta;
+  w.store(wp, count);
+  m.store(mp, count);
+  v.store(vp, count);
+  e.store(ep, count);
+}
+
+// Returns sum_i <g~_i, E_i> of the old trails when ``with_dot`` (block sums in block order), else 0.
+template <typename T>
+double update_all(std::vector<at::Tensor>& ws, const std::vector<at::Tensor>& gs, std::vector<at::Tensor>& ms,
+                  std::vector<at::Tensor>& vs, std::vector<at::Tensor>& es, const std::vector<double>& steps,
+                  double a, const Hyper& h, bool with_dot) {
+  std::vector<Coef<T>> coefs;
+  for (double s : steps) coefs.push_back(coef_of<T>(a, s, h));
+  constexpr int64_t W = at::vec::Vectorized<T>::size();
+  const auto blocks = blocks_of(ws);
+  std::vector<double> partial(blocks.size(), 0.0);
+  for_blocks(blocks, [&](int64_t k, const Block& b) {
+    const int64_t i = b.tensor;
+    T* w = ws[i].data_ptr<T>();
+    const T* g = gs[i].data_ptr<T>();
+    T *m = ms[i].data_ptr<T>(), *v = vs[i].data_ptr<T>(), *e = es[i].data_ptr<T>();
+    DotAcc<T> acc;
+    DotAcc<T>* accp = with_dot ? &acc : nullptr;
+    for (int64_t j = b.begin; j < b.end; j += W) {
+      const int64_t count = std::min(W, b.end - j);
+      update_vec<T>(w + j, g + j, m + j, v + j, e + j, count, coefs[i], h, accp);
+    }
+    partial[k] = acc.sum();
+  });
+  double total = 0.0;
+  for (double x : partial) total += x;
+  return total;
+}
+
+// ----------------------------------------------------------------------------- checks
+
+void check_lists(const std::vector<at::Tensor>& ref, const std::vector<std::vector<at::Tensor>>& others) {
+  TORCH_CHECK(!ref.empty(), "stepsize_tower native kernel: empty tensor list");
+  const auto dtype = ref[0].scalar_type();
+  TORCH_CHECK(dtype == at::kFloat || dtype == at::kDouble,
+              "stepsize_tower native kernel: float32 or float64 tensors only, got ", dtype);
+  for (const auto& list : others) {
+    TORCH_CHECK(list.size() == ref.size(), "stepsize_tower native kernel: tensor lists differ in length (",
+                list.size(), " vs ", ref.size(), ")");
+  }
+  for (size_t i = 0; i < ref.size(); ++i) {
+    for (const auto& list : others) {
+      for (const auto* t : {&ref[i], &list[i]}) {
+        TORCH_CHECK(t->device().is_cpu() && t->layout() == at::kStrided && t->is_contiguous(),
+                    "stepsize_tower native kernel: tensor ", i, " must be a dense contiguous CPU tensor");
+        TORCH_CHECK(t->scalar_type() == dtype, "stepsize_tower native kernel: tensor ", i, " has dtype ",
+                    t->scalar_type(), ", expected ", dtype);
+      }
+      TORCH_CHECK(list[i].numel() == ref[i].numel(), "stepsize_tower native kernel: tensor ", i,
+                  " has ", list[i].numel(), " elements, expected ", ref[i].numel());
+    }
+  }
+}
+
+// ----------------------------------------------------------------------------- entry points
+
+at::Tensor trail_dot(const std::vector<at::Tensor>& grads, const std::vector<at::Tensor>& trails,
+                     const std::vector<at::Tensor>& params, double l2, bool maximize) {
+  check_lists(grads, {trails, l2 != 0.0 ? params : grads});
+  const auto& ws = l2 != 0.0 ? params : grads;
+  const double h = grads[0].scalar_type() == at::kFloat ? dot_dispatch<float>(grads, trails, ws, l2, maximize)
+                                                         : dot_dispatch<double>(grads, trails, ws, l2, maximize);
+  return at::scalar_tensor(h, at::TensorOptions().dtype(at::kDouble));
+}
+
+double adam_update(std::vector<at::Tensor> params, const std::vector<at::Tensor>& grads,
+                 std::vector<at::Tensor> exp_avgs, std::vector<at::Tensor> exp_avg_sqs,
+                 std::vector<at::Tensor> trails, const std::vector<double>& steps, double a, double beta1,
+                 double beta2, double eps, double weight_decay, bool decoupled, bool maximize,
+                 double trail_weight, bool with_dot) {
+  check_lists(params, {grads, exp_avgs, exp_avg_sqs, trails});
+  TORCH_CHECK(steps.size() == params.size(), "stepsize_tower native kernel: ", steps.size(),
+              " step counts for ", params.size(), " tensors");
+  const Hyper h{beta1, beta2, eps, weight_decay, trail_weight, decoupled, maximize};
+  if (params[0].scalar_type() == at::kFloat) {
+    return update_all<float>(params, grads, exp_avgs, exp_avg_sqs, trails, steps, a, h, with_dot);
+  }
+  return update_all<double>(params, grads, exp_avgs, exp_avg_sqs, trails, steps, a, h, with_dot);
+}
+
+bool all_finite(const std::vector<at::Tensor>& grads) {
+  check_lists(grads, {grads});
+  return grads[0].scalar_type() == at::kFloat ? all_finite_of<float>(grads) : all_finite_of<double>(grads);
+}
+
+}  // namespace
+
+PYBIND11_MODULE(TORCH_EXTENSION_NAME, mod) {
+  mod.def("trail_dot", &trail_dot, "sum_i <g~_i, E_i> in float64 (deterministic block order)");
+  mod.def("all_finite", &all_finite, "whether every entry of the tensors is finite (one read pass)");
+  mod.def("adam_update", &adam_update,
+          "Adam/AdamW step with the trail update, one pass; with_dot: also sum_i <g~_i, E_i> (old trails)");
+}
