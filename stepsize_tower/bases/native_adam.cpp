@@ -136,11 +136,19 @@ bool all_finite_of(const std::vector<at::Tensor>& gs) {
   std::vector<char> ok(blocks.size(), 1);
   for_blocks(blocks, [&](int64_t k, const Block& b) {
     const T* g = gs[b.tensor].data_ptr<T>();
-    V acc(static_cast<T>(0));
-    for (int64_t j = b.begin; j < b.end; j += V::size()) {
-      const V x = V::loadu(g + j, std::min<int64_t>(V::size(), b.end - j));
-      acc = acc + (x - x);
+    constexpr int64_t W = V::size();
+    V a0(static_cast<T>(0)), a1 = a0, a2 = a0, a3 = a0;  // four chains: the adds' latency overlaps
+    int64_t j = b.begin;
+    for (; j + 4 * W <= b.end; j += 4 * W) {
+      const V x0 = V::loadu(g + j), x1 = V::loadu(g + j + W), x2 = V::loadu(g + j + 2 * W);
+      const V x3 = V::loadu(g + j + 3 * W);
+      a0 = a0 + (x0 - x0), a1 = a1 + (x1 - x1), a2 = a2 + (x2 - x2), a3 = a3 + (x3 - x3);
     }
+    for (; j < b.end; j += W) {
+      const V x = V::loadu(g + j, std::min<int64_t>(W, b.end - j));
+      a0 = a0 + (x - x);
+    }
+    const V acc = (a0 + a1) + (a2 + a3);
     T lanes[V::size()];
     acc.store(lanes);
     for (int64_t i = 0; i < V::size(); ++i) ok[k] = ok[k] && lanes[i] == static_cast<T>(0);
@@ -214,36 +222,64 @@ Coef<T> coef_of(double a, double step, const Hyper& h) {
           static_cast<T>(std::sqrt(1.0 - std::pow(h.beta2, step))), static_cast<T>(decay)};
 }
 
-// One vector (or the zero-padded tail) of one tensor, in torch.optim.Adam's order of operations.
-// With ``acc`` (the lagged variant), also adds <g~, E> of the old trail to it.
+// Every constant of one tensor's update, as vectors, built once per block. The update loop reads
+// them from registers: had it read the Hyper/Coef fields instead, each vector store (which may
+// alias anything) would force them to be reloaded, converted and broadcast again, which made the
+// update twice as slow as torch's fused Adam on cached data.
 template <typename T>
-void update_vec(T* wp, const T* gp, T* mp, T* vp, T* ep, int64_t count, const Coef<T>& c, const Hyper& h,
-                DotAcc<T>* acc) {
+struct Consts {
   using V = at::vec::Vectorized<T>;
-  V w = V::loadu(wp, count), g = V::loadu(gp, count), m = V::loadu(mp, count);
-  V v = V::loadu(vp, count), e = V::loadu(ep, count);
-  if (h.maximize) g = g.neg();
-  if (!h.decoupled && h.weight_decay != 0.0) g = g + V(static_cast<T>(h.weight_decay)) * w;
+  V one_minus_beta1, one_minus_beta2, beta2, bc2_sqrt, eps, step_size, l2, decay, keep_w, keep_e, omega;
+  bool maximize, l2_on, decoupled_on;
+
+  Consts(const Coef<T>& c, const Hyper& h)
+      : one_minus_beta1(static_cast<T>(1.0 - h.beta1)),
+        one_minus_beta2(static_cast<T>(1.0 - h.beta2)),
+        beta2(static_cast<T>(h.beta2)),
+        bc2_sqrt(c.bc2_sqrt),
+        eps(static_cast<T>(h.eps)),
+        step_size(c.step_size),
+        l2(static_cast<T>(h.weight_decay)),
+        decay(c.decay),
+        keep_w(static_cast<T>(1) - c.decay),
+        keep_e(static_cast<T>(1) - static_cast<T>(h.trail_weight)),
+        omega(static_cast<T>(h.trail_weight)),
+        maximize(h.maximize),
+        l2_on(!h.decoupled && h.weight_decay != 0.0),
+        decoupled_on(h.decoupled && h.weight_decay != 0.0) {}
+};
+
+// One vector of one tensor (FULL: W elements; else ``count`` elements, zero-padded), in
+// torch.optim.Adam's order of operations. With ``acc`` (the lagged variant), also adds
+// <g~, E> of the old trail to it.
+template <typename T, bool FULL>
+inline void update_vec(T* wp, const T* gp, T* mp, T* vp, T* ep, int64_t count, const Consts<T>& k,
+                       DotAcc<T>* acc) {
+  using V = at::vec::Vectorized<T>;
+  const auto load = [count](const T* ptr) { return FULL ? V::loadu(ptr) : V::loadu(ptr, count); };
+  V w = load(wp), g = load(gp), m = load(mp), v = load(vp), e = load(ep);
+  if (k.maximize) g = g.neg();
+  if (k.l2_on) g = g + k.l2 * w;
   if (acc != nullptr) acc->add(g, e);
   // Multiply-adds (fused where the ISA has them, as torch's lerp): with |g| < 1e-19 (float32),
   // g*g alone would be subnormal, which costs the CPU a slow path on every element.
-  m = at::vec::fmadd(V(static_cast<T>(1.0 - h.beta1)), g - m, m);
-  v = at::vec::fmadd(V(static_cast<T>(1.0 - h.beta2)) * g, g, v * V(static_cast<T>(h.beta2)));
-  const V denom = v.sqrt() / V(c.bc2_sqrt) + V(static_cast<T>(h.eps));
-  const V u = V(c.step_size) * (m / denom);
+  m = at::vec::fmadd(k.one_minus_beta1, g - m, m);
+  v = at::vec::fmadd(k.one_minus_beta2 * g, g, v * k.beta2);
+  const V denom = v.sqrt() / k.bc2_sqrt + k.eps;
+  const V u = k.step_size * (m / denom);
   V delta = u;
-  if (h.decoupled && h.weight_decay != 0.0) {
-    delta = u + V(c.decay) * w;
-    w = w * V(static_cast<T>(1) - c.decay) - u;
+  if (k.decoupled_on) {
+    delta = u + k.decay * w;
+    w = w * k.keep_w - u;
   } else {
     w = w - u;
   }
-  const T omega = static_cast<T>(h.trail_weight);
-  e = e * V(static_cast<T>(1) - omega) + V(omega) * delta;
-  w.store(wp, count);
-  m.store(mp, count);
-  v.store(vp, count);
-  e.store(ep, count);
+  e = e * k.keep_e + k.omega * delta;
+  if (FULL) {
+    w.store(wp), m.store(mp), v.store(vp), e.store(ep);
+  } else {
+    w.store(wp, count), m.store(mp, count), v.store(vp, count), e.store(ep, count);
+  }
 }
 
 // Returns sum_i <g~_i, E_i> of the old trails when ``with_dot`` (block sums in block order), else 0.
@@ -263,10 +299,10 @@ double update_all(std::vector<at::Tensor>& ws, const std::vector<at::Tensor>& gs
     T *m = ms[i].data_ptr<T>(), *v = vs[i].data_ptr<T>(), *e = es[i].data_ptr<T>();
     DotAcc<T> acc;
     DotAcc<T>* accp = with_dot ? &acc : nullptr;
-    for (int64_t j = b.begin; j < b.end; j += W) {
-      const int64_t count = std::min(W, b.end - j);
-      update_vec<T>(w + j, g + j, m + j, v + j, e + j, count, coefs[i], h, accp);
-    }
+    const Consts<T> k_(coefs[i], h);
+    int64_t j = b.begin;
+    for (; j + W <= b.end; j += W) update_vec<T, true>(w + j, g + j, m + j, v + j, e + j, W, k_, accp);
+    if (j < b.end) update_vec<T, false>(w + j, g + j, m + j, v + j, e + j, b.end - j, k_, accp);
     partial[k] = acc.sum();
   });
   double total = 0.0;
