@@ -41,10 +41,11 @@ class TowerAdam(TowerOptimizer):
 
     With ``depth=0`` this is exactly :class:`torch.optim.Adam` (``TowerAdamW``:
     :class:`torch.optim.AdamW`); it loads their checkpoints too (moments and step counts
-    carry over, the tower starts at the checkpoint's ``lr``). The update uses torch's fused
-    Adam kernel where it applies (``fused=None``). The trail of updates (``horizon > 0``) is one parameter-sized
-    buffer; with ``horizon=0`` the previous direction is recomputed from the moments and the
-    tower adds none.
+    carry over, the tower starts at the checkpoint's ``lr``). On the CPU the step runs in the
+    package's own C++ kernel (``native=None``: built on the first step, then cached); elsewhere
+    it uses torch's fused Adam kernel where it applies (``fused=None``). The trail of updates
+    (``horizon > 0``) is one parameter-sized buffer; with ``horizon=0`` the previous direction
+    is recomputed from the moments and the tower adds none.
 
     Args:
         params: iterable of parameters or parameter groups.
@@ -81,7 +82,7 @@ class TowerAdam(TowerOptimizer):
         hyper_level: Level | None = None,
         sharded: bool | None = None,
         compiled: bool = False,
-        native: bool | str = False,
+        native: bool | str | None = None,
         first_step_limit: float | None = DEFAULT_FIRST_STEP_LIMIT,
         growth_search: float | None = None,
     ) -> None:

@@ -199,9 +199,9 @@ def _check_bool(name: str) -> Callable[[Any], str | None]:
 
 
 def _check_native(value: Any) -> str | None:
-    if isinstance(value, bool) or value == "lagged":
+    if value is None or isinstance(value, bool) or value == "lagged":
         return None
-    return f"Invalid native: {value!r}; expected True, False or 'lagged'"
+    return f"Invalid native: {value!r}; expected None (the default), True, False or 'lagged'"
 
 
 def _check_sharded_flag(value: Any) -> str | None:
@@ -414,9 +414,11 @@ ADAM_OPTIONS: tuple[Option, ...] = (
         "native",
         "on CPU, run the step in a C++ kernel (a read pass for the hypergradient, then one "
         "multi-threaded loop that updates weights, moments and the trail together), built with "
-        "PyTorch's extension machinery on the first step and cached. Same results up to rounding; "
-        'needs float32/float64 parameters, ``granularity="group"``, ``horizon > 0``, a C++ compiler '
-        "and ninja, and uses the default path otherwise (one logged notice). "
+        "PyTorch's extension machinery on the first step (about half a minute, once) and cached. "
+        "``None`` (the default): wherever it applies, unless ``compiled=True``; ``True``: also "
+        "over ``compiled``; ``False``: never (the reference path, as on CUDA). Same results up to "
+        'rounding; needs float32/float64 parameters, ``granularity="group"``, ``horizon > 0``, a C++ '
+        "compiler and ninja, and uses the reference path otherwise (one logged notice). "
         '``STEPSIZE_TOWER_NATIVE=0`` turns it off. ``"lagged"``: the hypergradient of step s is '
         "taken inside step s-1's update pass (one read pass less; the step size reacts a step later)",
         _check_native,

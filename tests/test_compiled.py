@@ -18,6 +18,9 @@ from torch import Tensor, nn
 from stepsize_tower import TowerAdam, TowerAdamW
 from stepsize_tower.bases import compiled as _compiled
 
+# Bit for bit against torch.optim or another path of ours: the reference path (conftest.py).
+pytestmark = pytest.mark.usefixtures("reference_path")
+
 
 @pytest.fixture(scope="module", autouse=True)
 def _needs_compiler() -> Iterator[None]:

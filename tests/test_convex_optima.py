@@ -186,6 +186,10 @@ def test_rosenbrock_matches_scipy(point: list[float]) -> None:
 ROSEN_STEPS = 5000
 
 
+# The valley is chaotic in rounding: TowerAdam's native CPU kernel (same math, other rounding)
+# ends typed 1e-2 at x = (0.9554, 0.8828) and typed 1 at (0.99981, 0.99961) (measured). The
+# recorded outcomes are the reference path's, which runs everywhere (conftest.py).
+@pytest.mark.usefixtures("reference_path")
 @pytest.mark.parametrize(("base", "lr"), cases("rosenbrock"))
 def test_rosenbrock_reaches_its_minimum(base: str, lr: float) -> None:
     # reference: SciPy rosen (Rosenbrock 1960): minimum 0 at (1, 1), usual start (-1.2, 1).

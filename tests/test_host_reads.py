@@ -28,6 +28,9 @@ import stepsize_tower.levels as levels
 from stepsize_tower import TowerAdam, TowerAdamW, TowerSGD, make_tower
 from tests.registry import CONFIGS, Config
 
+# Stands in for an accelerator, where the native CPU kernel never runs: the reference path (conftest.py).
+pytestmark = pytest.mark.usefixtures("reference_path")
+
 _READ_OPS = (torch.ops.aten._local_scalar_dense.default, torch.ops.aten.item.default)
 
 #: Depth 0 is torch.optim's own update (its reads are torch's); everything else must read nothing.

@@ -18,6 +18,9 @@ from torch import Tensor
 
 from stepsize_tower import Level, TowerAdam, TowerAdamW, TowerSGD
 
+# Bit for bit against torch.optim or another path of ours: the reference path (conftest.py).
+pytestmark = pytest.mark.usefixtures("reference_path")
+
 DTYPE = torch.float64
 N_IN, N_HIDDEN, N_OUT, BATCH = 5, 7, 3, 8
 

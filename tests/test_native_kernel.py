@@ -18,7 +18,7 @@ import torch
 from torch import Tensor, nn
 
 from stepsize_tower import TowerAdam, TowerAdamW
-from stepsize_tower.bases import native
+from stepsize_tower.bases import compiled, native
 
 SHAPES = [(70, 50), (50,), (3, 4, 2), (1,)]
 # float32 tolerance against torch.optim: both round each elementwise operation once, in a
@@ -189,9 +189,9 @@ class _Spy:
 def test_optimizer_with_native_kernel_matches_default_path(
     built: None, monkeypatch: pytest.MonkeyPatch, dtype: torch.dtype, cls: type[TowerAdam], kw: dict[str, Any]
 ) -> None:
-    # Reference: the default path. The trail differs by rounding (the kernel adds the intended
+    # Reference: the reference path (native=False). The trail differs by rounding (the kernel adds the intended
     # update a·d, the default path w_before - w_after), and the hypergradient feeds it back.
-    ref = _train(cls, dtype=dtype, **kw)
+    ref = _train(cls, dtype=dtype, native=False, **kw)
     spy = _Spy(monkeypatch)
     got = _train(cls, dtype=dtype, native=True, **kw)
     assert spy.calls >= 20  # every step after the first took the kernel
@@ -214,8 +214,8 @@ def _notices(caplog: pytest.LogCaptureFixture) -> list[logging.LogRecord]:
 def test_switched_off_runs_the_default_path_bitwise_with_one_notice(
     monkeypatch: pytest.MonkeyPatch, caplog: pytest.LogCaptureFixture
 ) -> None:
-    # Reference: the default path, bit for bit (no build needed: runs everywhere, CI included).
-    ref = _train(TowerAdam)
+    # Reference: the reference path, bit for bit (no build needed: runs everywhere, CI included).
+    ref = _train(TowerAdam, native=False)
     _disabled(monkeypatch)
     with caplog.at_level(logging.INFO, logger=native.__name__):
         got = _train(TowerAdam, native=True)
@@ -227,13 +227,13 @@ def test_switched_off_runs_the_default_path_bitwise_with_one_notice(
 def test_a_failed_build_falls_back_with_one_warning(
     monkeypatch: pytest.MonkeyPatch, caplog: pytest.LogCaptureFixture
 ) -> None:
-    # Reference: the default path, bit for bit; the build is made to fail (no compiler needed).
+    # Reference: the reference path, bit for bit; the build is made to fail (no compiler needed).
     from torch.utils import cpp_extension
 
     def broken(**_: Any) -> None:
         raise RuntimeError("Error building extension: simulated compiler failure")
 
-    ref = _train(TowerAdamW)
+    ref = _train(TowerAdamW, native=False)
     _disabled(monkeypatch)
     monkeypatch.delenv(native.ENV_SWITCH)
     monkeypatch.setattr(cpp_extension, "load", broken)
@@ -247,9 +247,9 @@ def test_a_failed_build_falls_back_with_one_warning(
 
 
 def test_tensors_outside_its_scope_take_the_default_path(built: None, monkeypatch: pytest.MonkeyPatch) -> None:
-    # Reference: the default path, bit for bit, for bfloat16 parameters (not taken by the kernel).
+    # Reference: the reference path, bit for bit, for bfloat16 parameters (not taken by the kernel).
     spy = _Spy(monkeypatch)
-    ref = _train(TowerAdam, dtype=torch.bfloat16)
+    ref = _train(TowerAdam, dtype=torch.bfloat16, native=False)
     got = _train(TowerAdam, dtype=torch.bfloat16, native=True)
     assert spy.calls == 0
     assert all(torch.equal(a, b) for a, b in zip(ref, got, strict=True))
@@ -259,6 +259,25 @@ def test_tensors_outside_its_scope_take_the_default_path(built: None, monkeypatc
     assert not native.applies([torch.zeros(4, 4).t()], [torch.zeros(4, 4)])  # not contiguous
     assert not native.applies([w], [])  # lists of different lengths
     assert native.applies([w], [torch.zeros(4)])
+
+
+def test_the_default_takes_the_kernel_on_cpu_unless_compiled_is_asked_for(
+    built: None, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    # Reference: native=True, bit for bit (the default native=None takes the same kernel);
+    # an explicit compiled=True keeps the compiled kernels (common practice: an explicit
+    # option wins over a default).
+    want = _train(TowerAdam, native=True)
+    spy = _Spy(monkeypatch)
+    got = _train(TowerAdam)
+    assert spy.calls >= 20 and all(torch.equal(a, b) for a, b in zip(want, got, strict=True))
+    assert TowerAdam([torch.zeros(2, requires_grad=True)]).param_groups[0]["native"] is None
+    spy.calls = 0
+    monkeypatch.setattr(compiled, "available", lambda: True)
+    monkeypatch.setattr(compiled, "adam_trail_update", lambda *a, **k: None)  # no compile needed
+    monkeypatch.setattr(compiled, "two_pass_dot", lambda grads, *a, **k: torch.zeros((), dtype=torch.float64))
+    _train(TowerAdam, steps=3, compiled=True)
+    assert spy.calls == 0
 
 
 def test_bad_input_to_the_kernel_raises_a_clear_error(built: None) -> None:

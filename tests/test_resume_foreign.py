@@ -22,6 +22,9 @@ from torch import Tensor
 from stepsize_tower import TowerAdam, TowerAdamW, TowerSGD
 from stepsize_tower.options import DEFAULT_ADAM_HORIZON, DEFAULT_HORIZON
 
+# Bit for bit against torch.optim or another path of ours: the reference path (conftest.py).
+pytestmark = pytest.mark.usefixtures("reference_path")
+
 N_IN, N_HIDDEN, N_OUT, BATCH = 5, 7, 3, 8
 BEFORE, AFTER = 8, 8  # steps before the checkpoint, steps after it
 

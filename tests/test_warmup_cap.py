@@ -90,6 +90,7 @@ def test_a_return_to_an_earlier_peak_is_not_capped() -> None:
     assert [used for _, used, _ in capped] == [used for _, used, _ in free]
 
 
+@pytest.mark.usefixtures("reference_path")  # stands in for an accelerator (conftest.py)
 def test_masked_warmup_steps_equal_the_read_path_bitwise(monkeypatch: pytest.MonkeyPatch) -> None:
     """A warm-up longer than the start-up window: its capped steps are masked steps on accelerators."""
     monkeypatch.setattr(engine, "MASK_ON_CPU", True)

@@ -231,11 +231,14 @@ class AdamRule:
     # ------------------------------------------------------------ compiled / native trail (opt-in)
 
     def _kernels(self, group: dict[str, Any], params: list[Tensor], *others: list[Tensor]) -> ModuleType | None:
-        """The kernel module of the step: :mod:`.native` (``native=True``, CPU) or :mod:`.compiled`
-        (``compiled=True``), where it applies to these tensors; None for the default path."""
+        """The kernel module of the step: :mod:`.native` (``native=None``, the default, or True; CPU)
+        or :mod:`.compiled` (``compiled=True``), where it applies to these tensors; None for the
+        reference path. An explicit ``compiled=True`` takes precedence over the default ``native=None``."""
         if group.get("learn_betas") or group["granularity"] != "group" or not params:
             return None
-        if group.get("native") and native.applies(params, *others):
+        choice = group.get("native")
+        wanted = bool(choice) or (choice is None and not group.get("compiled"))
+        if wanted and not torch.compiler.is_compiling() and native.applies(params, *others):  # inductor: reference ops
             return native
         if group.get("compiled") and _compiled_tensors(params) and compiled.available():
             return compiled
