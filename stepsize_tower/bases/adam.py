@@ -288,8 +288,12 @@ class AdamRule:
             return False
         beta1, beta2 = group["betas"]
         steps = [st["step"] for st in states]
-        torch._foreach_add_(steps, 1)
-        lag = kernels is native and group["native"] == "lagged"
+        if kernels is native:  # the kernel advances the counts itself (no per-tensor Python work)
+            extra: dict[str, bool] = {"increment_steps": True, "with_dot": group["native"] == "lagged"}
+        else:
+            torch._foreach_add_(steps, 1)
+            extra = {}
+        lag = extra.get("with_dot", False)
         h = kernels.adam_trail_update(
             params,
             grads,
@@ -304,7 +308,7 @@ class AdamRule:
             self.decoupled,
             group["maximize"],
             weight,
-            **({"with_dot": True} if lag else {}),
+            **extra,
         )
         if lag:
             lagged.remember(trails[0], h)

@@ -95,18 +95,15 @@ def applies(params: Sequence[Tensor], *others: Sequence[Tensor]) -> bool:
 
     Every tensor dense, contiguous, on the CPU, real, of one dtype in :data:`DTYPES`, and
     ``others[k][i]`` shaped like ``params[i]``. Anything else (16-bit or complex parameters,
-    sparse gradients, CUDA tensors, mixed dtypes) takes the default path.
+    sparse gradients, CUDA tensors, mixed dtypes) takes the default path. The per-tensor checks
+    run in C++ (microseconds for a model's tensors; in Python they cost a tenth of a step at 1M
+    parameters in 30 tensors).
     """
-    if not params or params[0].dtype not in DTYPES or any(len(seq) != len(params) for seq in others):
+    if not params or params[0].dtype not in DTYPES or params[0].device.type != "cpu":
         return False
-    dtype = params[0].dtype
-    for i, p in enumerate(params):
-        for t in (p, *(seq[i] for seq in others)):
-            if t.device.type != "cpu" or t.layout != torch.strided or t.dtype != dtype or not t.is_contiguous():
-                return False
-            if t.shape != p.shape:
-                return False
-    return available()
+    if any(len(seq) != len(params) for seq in others) or not available():
+        return False
+    return bool(_kernels().compatible(list(params), [list(seq) for seq in others]))
 
 
 def _isa_flags() -> tuple[str, list[str]]:
@@ -217,10 +214,13 @@ def adam_trail_update(
     maximize: bool,
     trail_weight: float,
     with_dot: bool = False,
+    increment_steps: bool = False,
 ) -> Tensor | None:
     r"""One Adam/AdamW step with step size ``a`` and the trail update, in one pass, in place.
 
-    ``steps``: per-tensor step counts, already incremented; ``decoupled=True`` is AdamW;
+    ``steps``: per-tensor step counts (one-element CPU tensors, or floats), already incremented
+    unless ``increment_steps`` (tensors only: the kernel adds 1 to each first, as torch's fused
+    Adam does); ``decoupled=True`` is AdamW;
     ``trail_weight`` is :math:`\omega`. Same tensor requirements as :func:`trail_dot`.
     With ``with_dot`` the same pass also returns :math:`h = \sum \langle \tilde g, E\rangle` of
     the trails as they were before this update (0-dim float64, summed as :func:`trail_dot`
@@ -229,10 +229,12 @@ def adam_trail_update(
     params = list(params)
     if not params:
         return torch.zeros((), dtype=torch.float64) if with_dot else None
-    counts = [float(s) for s in steps]
+    if increment_steps and not all(isinstance(s, Tensor) for s in steps):
+        raise ValueError("increment_steps needs step counts as tensors (a float cannot be advanced in place)")
+    counts = [s if isinstance(s, Tensor) else torch.tensor(float(s), dtype=torch.float64) for s in steps]
     h = _kernels().adam_update(
-        params, list(grads), list(exp_avgs), list(exp_avg_sqs), list(trails), counts, float(a),
-        float(beta1), float(beta2), float(eps), float(weight_decay), bool(decoupled), bool(maximize),
+        params, list(grads), list(exp_avgs), list(exp_avg_sqs), list(trails), counts, bool(increment_steps),
+        float(a), float(beta1), float(beta2), float(eps), float(weight_decay), bool(decoupled), bool(maximize),
         float(trail_weight), bool(with_dot),
     )  # fmt: skip
     return torch.tensor(h, dtype=torch.float64) if with_dot else None

@@ -335,6 +335,41 @@ void check_lists(const std::vector<at::Tensor>& ref, const std::vector<std::vect
   }
 }
 
+// Whether the kernels take these lists (the checks of check_lists, answered instead of raised):
+// one float32/float64 dtype, dense contiguous CPU tensors, others[k][i] shaped like ref[i].
+bool compatible(const std::vector<at::Tensor>& ref, const std::vector<std::vector<at::Tensor>>& others) {
+  if (ref.empty()) return false;
+  const auto dtype = ref[0].scalar_type();
+  if (dtype != at::kFloat && dtype != at::kDouble) return false;
+  const auto fits = [dtype](const at::Tensor& t) {
+    return t.device().is_cpu() && t.layout() == at::kStrided && t.scalar_type() == dtype && t.is_contiguous();
+  };
+  for (const auto& list : others) {
+    if (list.size() != ref.size()) return false;
+  }
+  for (size_t i = 0; i < ref.size(); ++i) {
+    if (!fits(ref[i])) return false;
+    for (const auto& list : others) {
+      if (!fits(list[i]) || list[i].sizes() != ref[i].sizes()) return false;
+    }
+  }
+  return true;
+}
+
+// Each tensor's step count after this step: read from (and, with ``increment``, first advanced
+// in) its 0-dim CPU count tensor, as torch's fused Adam advances ``state["step"]``.
+std::vector<double> step_counts(std::vector<at::Tensor>& steps, bool increment) {
+  std::vector<double> out;
+  out.reserve(steps.size());
+  for (auto& t : steps) {
+    TORCH_CHECK(t.numel() == 1 && t.device().is_cpu(), "stepsize_tower native kernel: step counts must be ",
+                "one-element CPU tensors");
+    if (increment) t.add_(1);
+    out.push_back(t.item<double>());
+  }
+  return out;
+}
+
 // ----------------------------------------------------------------------------- entry points
 
 at::Tensor trail_dot(const std::vector<at::Tensor>& grads, const std::vector<at::Tensor>& trails,
@@ -348,12 +383,13 @@ at::Tensor trail_dot(const std::vector<at::Tensor>& grads, const std::vector<at:
 
 double adam_update(std::vector<at::Tensor> params, const std::vector<at::Tensor>& grads,
                  std::vector<at::Tensor> exp_avgs, std::vector<at::Tensor> exp_avg_sqs,
-                 std::vector<at::Tensor> trails, const std::vector<double>& steps, double a, double beta1,
-                 double beta2, double eps, double weight_decay, bool decoupled, bool maximize,
+                 std::vector<at::Tensor> trails, std::vector<at::Tensor> step_tensors, bool increment, double a,
+                 double beta1, double beta2, double eps, double weight_decay, bool decoupled, bool maximize,
                  double trail_weight, bool with_dot) {
   check_lists(params, {grads, exp_avgs, exp_avg_sqs, trails});
-  TORCH_CHECK(steps.size() == params.size(), "stepsize_tower native kernel: ", steps.size(),
+  TORCH_CHECK(step_tensors.size() == params.size(), "stepsize_tower native kernel: ", step_tensors.size(),
               " step counts for ", params.size(), " tensors");
+  const std::vector<double> steps = step_counts(step_tensors, increment);
   const Hyper h{beta1, beta2, eps, weight_decay, trail_weight, decoupled, maximize};
   if (params[0].scalar_type() == at::kFloat) {
     return update_all<float>(params, grads, exp_avgs, exp_avg_sqs, trails, steps, a, h, with_dot);
@@ -370,7 +406,9 @@ bool all_finite(const std::vector<at::Tensor>& grads) {
 
 PYBIND11_MODULE(TORCH_EXTENSION_NAME, mod) {
   mod.def("trail_dot", &trail_dot, "sum_i <g~_i, E_i> in float64 (deterministic block order)");
+  mod.def("compatible", &compatible, "whether the kernels take these tensor lists");
   mod.def("all_finite", &all_finite, "whether every entry of the tensors is finite (one read pass)");
   mod.def("adam_update", &adam_update,
-          "Adam/AdamW step with the trail update, one pass; with_dot: also sum_i <g~_i, E_i> (old trails)");
+          "Adam/AdamW step with the trail update, one pass (increment: advance the step counts first); "
+          "with_dot: also sum_i <g~_i, E_i> (old trails)");
 }
