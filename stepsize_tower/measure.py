@@ -10,7 +10,7 @@ import torch
 from torch import Tensor
 
 from . import distributed, trail
-from .bases import BaseRule, CompiledTrail
+from .bases import BaseRule, CompiledTrail, NativeProbe
 from .plan import Batch, Plan
 
 __all__ = ["Measurement", "complete_across_ranks", "grads_finite", "measure"]
@@ -52,7 +52,10 @@ def measure(rule: BaseRule, group: dict[str, Any], ts: dict[str, Tensor], plan: 
     device = ts["step"].device
     prev_dot = slope = torch.zeros(plan.units, dtype=torch.float64, device=device)
     tangent_dots = None
-    if plan.exact or plan.learns_hyperparams:
+    fast = _native_probe(rule, group, plan, batch)
+    if fast is not None:
+        prev_dot = fast[0].reshape(1).to(device)
+    elif plan.exact or plan.learns_hyperparams:
         learned = ts.get("hyper_value")
         probes = [
             rule.probe(
@@ -69,7 +72,9 @@ def measure(rule: BaseRule, group: dict[str, Any], ts: dict[str, Tensor], plan: 
                 else torch.zeros_like(ts["hyper_value"])
             )
     trail_dot = _trail_dot(rule, group, plan, batch, device) if plan.horizon > 0 and plan.levels else None
-    gmax = _grad_max(batch.grads) if plan.blowup_guard or plan.clip_check else None
+    gmax = None
+    if plan.blowup_guard or plan.clip_check:
+        gmax = fast[1].to(device) if fast is not None else _grad_max(batch.grads)
     norm_sq = _grad_norm_sq(batch.grads, device) if plan.clip_check else None
     # Every dot product contains a gradient, and inf * 0 = nan: a non-finite gradient shows in
     # them, except on a step where no dot product saw the gradient (no trail yet).
@@ -77,6 +82,16 @@ def measure(rule: BaseRule, group: dict[str, Any], ts: dict[str, Tensor], plan: 
     if not (plan.exact or plan.learns_hyperparams) and not trail.has_trail(batch.states):
         finite = finite & grads_finite(batch.grads)
     return Measurement(prev_dot, slope, trail_dot, tangent_dots, gmax, norm_sq, finite)
+
+
+def _native_probe(rule: BaseRule, group: dict[str, Any], plan: Plan, batch: Batch) -> tuple[Tensor, Tensor] | None:
+    """The base's one-pass ``(<g_s, d_{0,s-1}>, max |g_s|)`` where only these are needed (one unit,
+    no slope, no learned hyperparameters, no trail), else None."""
+    if not isinstance(rule, NativeProbe) or not plan.exact or plan.learns_hyperparams or plan.unit_index is not None:
+        return None
+    if plan.startup_test or plan.searching or plan.sharded or (plan.horizon > 0 and plan.levels):
+        return None
+    return rule.native_probe(group, batch.params, batch.grads, batch.states)
 
 
 def _trail_dot(rule: BaseRule, group: dict[str, Any], plan: Plan, batch: Batch, device: torch.device) -> Tensor:

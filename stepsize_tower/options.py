@@ -204,6 +204,12 @@ def _check_native(value: Any) -> str | None:
     return f"Invalid native: {value!r}; expected None (the default), True, False or 'lagged'"
 
 
+def _check_native_flag(value: Any) -> str | None:
+    if value is None or isinstance(value, bool):
+        return None
+    return f"Invalid native: {value!r}; expected None (the default), True or False"
+
+
 def _check_sharded_flag(value: Any) -> str | None:
     if value is None or isinstance(value, bool):
         return None
@@ -372,6 +378,16 @@ SGD_OPTIONS: tuple[Option, ...] = (
         "``learn_momentum``) and levels are on top (at ``depth=0`` None is torch.optim.SGD's default path)",
         _check_fused,
         legacy=None,
+    ),
+    Option(
+        "native",
+        "on CPU, with momentum (not Nesterov), take the hypergradient ``<g_s, buf>`` and the blow-up "
+        "guard's largest gradient entry in one C++ read pass, built with PyTorch's extension machinery "
+        "on the first such step (about half a minute, once) and cached. ``None`` (the default): wherever "
+        "it applies; ``False``: never (the reference path, as on CUDA). Same results up to rounding of "
+        "the dot product; ``STEPSIZE_TOWER_NATIVE=0`` turns it off",
+        _check_native_flag,
+        legacy=False,
     ),
 )
 

@@ -67,6 +67,7 @@ class TowerSGD(TowerOptimizer):
         sharded: bool | None = None,
         fused: bool | None = None,
         growth_search: float | None = None,
+        native: bool | None = None,
     ) -> None:
         defaults = {
             "lr": lr,
@@ -84,6 +85,7 @@ class TowerSGD(TowerOptimizer):
             "sharded": sharded,
             "fused": fused,
             "growth_search": growth_search,
+            "native": native,
         }
         super().__init__(params, defaults)
 

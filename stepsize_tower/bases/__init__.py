@@ -8,7 +8,7 @@ fused kernels, where valid), ``compiled`` (the opt-in compiled Adam + trail kern
 
 from .adam import AdamRule
 from .grad import loss_grad
-from .protocol import BaseRule, CompiledTrail, Probe
+from .protocol import BaseRule, CompiledTrail, NativeProbe, Probe
 from .sgd import SGDRule
 
-__all__ = ["AdamRule", "BaseRule", "CompiledTrail", "Probe", "SGDRule", "loss_grad"]
+__all__ = ["AdamRule", "BaseRule", "CompiledTrail", "NativeProbe", "Probe", "SGDRule", "loss_grad"]

@@ -29,7 +29,7 @@ sums added in block order, so :math:`h` does not depend on the number of threads
 runs the blocks on ``at::parallel_for`` (torch's thread count), vectorized with
 ``at::vec::Vectorized``.
 
-Build: ``torch.utils.cpp_extension.load`` compiles ``native_adam.cpp`` on the first call
+Build: ``torch.utils.cpp_extension.load`` compiles ``native_kernels.cpp`` on the first call
 (tens of seconds, never at import) into torch's extensions directory
 (``TORCH_EXTENSIONS_DIR`` or ``~/.cache/torch_extensions``), under a name that hashes the
 source, the flags and the torch version, so later processes load it in milliseconds. Flags:
@@ -55,12 +55,21 @@ from types import ModuleType
 import torch
 from torch import Tensor
 
-__all__ = ["ENV_SWITCH", "adam_trail_update", "all_finite", "applies", "available", "reset", "trail_dot"]
+__all__ = [
+    "ENV_SWITCH",
+    "adam_trail_update",
+    "all_finite",
+    "applies",
+    "available",
+    "dot_and_max",
+    "reset",
+    "trail_dot",
+]
 
 #: Environment variable: set to "0" to never build or use the native kernels.
 ENV_SWITCH = "STEPSIZE_TOWER_NATIVE"
 
-_SOURCE = Path(__file__).with_name("native_adam.cpp")
+_SOURCE = Path(__file__).with_name("native_kernels.cpp")
 _log = logging.getLogger(__name__)
 
 _module: ModuleType | None = None
@@ -190,6 +199,32 @@ def trail_dot(
     if l2 != 0 and params is None:
         raise ValueError("L2 weight decay needs params")
     return _kernels().trail_dot(grads, trails, list(params) if params is not None else [], l2, bool(maximize))  # type: ignore[no-any-return]
+
+
+def dot_and_max(
+    grads: Sequence[Tensor],
+    others: Sequence[Tensor],
+    *,
+    params: Sequence[Tensor] | None = None,
+    weight_decay: float = 0.0,
+    maximize: bool = False,
+) -> tuple[Tensor, Tensor]:
+    r"""``(Σ_i <g̃_i, B_i>, max_i |g_i|)`` as 0-dim float64 tensors, in one read pass.
+
+    ``g̃ = ±g + λ w`` (L2 decay ``weight_decay``, which needs ``params``); the largest entry is
+    of the raw gradients, NaN if any entry is NaN (inf if one is infinite). TowerSGD with
+    momentum: ``B`` is the momentum buffer, and this is its hypergradient and its blow-up
+    guard's measure. Same tensor requirements as :func:`trail_dot`.
+    """
+    grads, others = list(grads), list(others)
+    if not grads:
+        zero = torch.zeros((), dtype=torch.float64)
+        return zero, zero.clone()
+    l2 = float(weight_decay)
+    if l2 != 0 and params is None:
+        raise ValueError("L2 weight decay needs params")
+    dot, largest = _kernels().dot_and_max(grads, others, list(params) if params is not None else [], l2, bool(maximize))
+    return torch.tensor(dot, dtype=torch.float64), torch.tensor(largest, dtype=torch.float64)
 
 
 def all_finite(tensors: Sequence[Tensor]) -> bool:

@@ -122,3 +122,14 @@ class CompiledTrail(Protocol):
     ) -> bool:
         """The update with one step size ``a0`` and ``E <- (1 - weight) E + weight Δ`` in one kernel; False if not."""
         ...
+
+
+@runtime_checkable
+class NativeProbe(Protocol):
+    """A base whose previous-direction dot product and largest gradient entry come from one native pass."""
+
+    def native_probe(
+        self, group: dict[str, Any], params: list[Tensor], grads: list[Tensor], states: list[dict[str, Any]]
+    ) -> tuple[Tensor, Tensor] | None:
+        """``(Σ <g_s, d_{0,s-1}>, max |g_s|)`` over the whole group, or None where it does not apply."""
+        ...

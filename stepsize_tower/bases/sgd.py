@@ -9,7 +9,7 @@ import torch
 from torch import Tensor
 from torch.optim.sgd import sgd as torch_sgd
 
-from . import chunks, fused, masking
+from . import chunks, fused, masking, native
 from .buffers import keep
 from .grad import loss_grad
 from .protocol import Probe
@@ -82,6 +82,22 @@ class SGDRule:
             return Probe(dot_prev, zero, tangent_dots)
         buf_new = gg if g_buf is None else mu * g_buf + (1 - damp) * gg  # <g, buf_s>
         return Probe(dot_prev, gg + mu * buf_new if group["nesterov"] else buf_new, tangent_dots)
+
+    def native_probe(
+        self, group: dict[str, Any], params: list[Tensor], grads: list[Tensor], states: list[dict[str, Any]]
+    ) -> tuple[Tensor, Tensor] | None:
+        """``(Σ <g̃_s, buf>, max |g_s|)`` over the group in one read pass of the native CPU kernel
+        (heavy ball, every buffer present), or None where it does not apply."""
+        if group["momentum"] == 0 or group["nesterov"] or group.get("learn_momentum") or not params:
+            return None
+        if group.get("native") is False or torch.compiler.is_compiling():
+            return None
+        bufs = [st["momentum_buffer"] for st in states if st.get("momentum_buffer") is not None]
+        if len(bufs) != len(params) or not native.applies(params, grads, bufs):
+            return None
+        return native.dot_and_max(
+            grads, bufs, params=params, weight_decay=group["weight_decay"], maximize=group["maximize"]
+        )
 
     def update(
         self,

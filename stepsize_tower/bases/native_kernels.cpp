@@ -1,6 +1,8 @@
-// Native CPU kernels for TowerAdam's trail step (see native.py for the math and the build).
+// Native CPU kernels of the tower's step (see native.py for the math and the build).
 //
 // trail_dot:    h = sum_i <g~_i, E_i>, g~ = +-g (+ l2 w), float64 accumulation.
+// dot_and_max:  the same sum and max_i |g_i| (NaN if any entry is NaN) in one read pass
+//               (TowerSGD with momentum: E is the momentum buffer).
 // adam_update:  w, m, v and the trail E of every tensor updated in one pass; optionally (the
 //               one-step-lagged variant) the same pass also returns h of the old trails.
 //
@@ -17,8 +19,10 @@
 #include <immintrin.h>
 #endif
 
+#include <algorithm>
 #include <cmath>
 #include <type_traits>
+#include <utility>
 #include <vector>
 
 namespace {
@@ -310,6 +314,62 @@ double update_all(std::vector<at::Tensor>& ws, const std::vector<at::Tensor>& gs
   return total;
 }
 
+// ----------------------------------------------------------------------------- dot and largest entry
+
+// One block: sum <g~, e> (exact products, float64, 8 lanes in a fixed order) and max |g| of the
+// raw gradient; at::vec::maximum propagates NaN, zero-padded tails add nothing to either.
+template <typename T, bool MAXIMIZE, bool L2>
+std::pair<double, T> block_dot_max(const T* g, const T* e, const T* w, T l2, int64_t n) {
+  using V = at::vec::Vectorized<T>;
+  constexpr int64_t W = V::size();
+  DotAcc<T> acc;
+  V mx(static_cast<T>(0));
+  const V l2v(l2);
+  for (int64_t j = 0; j < n; j += W) {
+    const int64_t count = std::min(W, n - j);
+    V x = count == W ? V::loadu(g + j) : V::loadu(g + j, count);
+    const V ev = count == W ? V::loadu(e + j) : V::loadu(e + j, count);
+    mx = at::vec::maximum(mx, x.abs());
+    if (MAXIMIZE) x = x.neg();
+    if (L2) x = x + l2v * (count == W ? V::loadu(w + j) : V::loadu(w + j, count));
+    acc.add(x, ev);
+  }
+  T lanes[W];
+  mx.store(lanes);
+  T m = lanes[0];
+  for (int64_t k = 1; k < W; ++k) m = (std::isnan(m) || std::isnan(lanes[k])) ? NAN : std::max(m, lanes[k]);
+  return {acc.sum(), m};
+}
+
+template <typename T, bool MAXIMIZE, bool L2>
+std::pair<double, double> dot_max_all(const std::vector<at::Tensor>& gs, const std::vector<at::Tensor>& es,
+                                      const std::vector<at::Tensor>& ws, double l2) {
+  const auto blocks = blocks_of(gs);
+  std::vector<std::pair<double, T>> partial(blocks.size(), {0.0, static_cast<T>(0)});
+  for_blocks(blocks, [&](int64_t k, const Block& b) {
+    const T* w = L2 ? ws[b.tensor].data_ptr<T>() + b.begin : nullptr;
+    partial[k] = block_dot_max<T, MAXIMIZE, L2>(gs[b.tensor].data_ptr<T>() + b.begin,
+                                                es[b.tensor].data_ptr<T>() + b.begin, w,
+                                                static_cast<T>(l2), b.end - b.begin);
+  });
+  double total = 0.0, largest = 0.0;
+  for (const auto& [dot, m] : partial) {  // block order: independent of the thread count
+    total += dot;
+    largest = (std::isnan(largest) || std::isnan(m)) ? NAN : std::max(largest, static_cast<double>(m));
+  }
+  return {total, largest};
+}
+
+template <typename T>
+std::pair<double, double> dot_max_dispatch(const std::vector<at::Tensor>& gs, const std::vector<at::Tensor>& es,
+                                           const std::vector<at::Tensor>& ws, double l2, bool maximize) {
+  const bool has_l2 = l2 != 0.0;
+  if (maximize) {
+    return has_l2 ? dot_max_all<T, true, true>(gs, es, ws, l2) : dot_max_all<T, true, false>(gs, es, ws, l2);
+  }
+  return has_l2 ? dot_max_all<T, false, true>(gs, es, ws, l2) : dot_max_all<T, false, false>(gs, es, ws, l2);
+}
+
 // ----------------------------------------------------------------------------- checks
 
 void check_lists(const std::vector<at::Tensor>& ref, const std::vector<std::vector<at::Tensor>>& others) {
@@ -381,6 +441,14 @@ at::Tensor trail_dot(const std::vector<at::Tensor>& grads, const std::vector<at:
   return at::scalar_tensor(h, at::TensorOptions().dtype(at::kDouble));
 }
 
+std::pair<double, double> dot_and_max(const std::vector<at::Tensor>& grads, const std::vector<at::Tensor>& others,
+                                      const std::vector<at::Tensor>& params, double l2, bool maximize) {
+  check_lists(grads, {others, l2 != 0.0 ? params : grads});
+  const auto& ws = l2 != 0.0 ? params : grads;
+  return grads[0].scalar_type() == at::kFloat ? dot_max_dispatch<float>(grads, others, ws, l2, maximize)
+                                               : dot_max_dispatch<double>(grads, others, ws, l2, maximize);
+}
+
 double adam_update(std::vector<at::Tensor> params, const std::vector<at::Tensor>& grads,
                  std::vector<at::Tensor> exp_avgs, std::vector<at::Tensor> exp_avg_sqs,
                  std::vector<at::Tensor> trails, std::vector<at::Tensor> step_tensors, bool increment, double a,
@@ -406,6 +474,7 @@ bool all_finite(const std::vector<at::Tensor>& grads) {
 
 PYBIND11_MODULE(TORCH_EXTENSION_NAME, mod) {
   mod.def("trail_dot", &trail_dot, "sum_i <g~_i, E_i> in float64 (deterministic block order)");
+  mod.def("dot_and_max", &dot_and_max, "(sum_i <g~_i, E_i> in float64, max |g|) in one read pass");
   mod.def("compatible", &compatible, "whether the kernels take these tensor lists");
   mod.def("all_finite", &all_finite, "whether every entry of the tensors is finite (one read pass)");
   mod.def("adam_update", &adam_update,
