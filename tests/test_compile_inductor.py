@@ -23,6 +23,11 @@ WARMUP = 12  # past the start-up window, where the step reads the step count
 CHECKED = 6
 
 
+# A compiled step traces the reference ops (the native CPU kernels stay out of graphs): eager
+# runs on the same path (conftest.py).
+pytestmark = pytest.mark.usefixtures("reference_path")
+
+
 @pytest.fixture(autouse=True)
 def _needs_inductor() -> Iterator[None]:
     if not _compiled.available():

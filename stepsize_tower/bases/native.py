@@ -1,8 +1,10 @@
-r"""Native CPU kernels (C++, built on first use) for the Adam update with the trail of updates.
+r"""Native CPU kernels (C++, built on first use) of the tower's step: the default on the CPU.
 
-:func:`trail_dot` and :func:`adam_trail_update` are the step of ``TowerAdam(native=True)`` on
-CPU (:meth:`stepsize_tower.bases.adam.AdamRule.trail_dot` / ``update_with_trail``), with the
-same math as :mod:`stepsize_tower.bases.compiled`. Per parameter tensor (float32 or float64;
+:func:`trail_dot` and :func:`adam_trail_update` are the step of ``TowerAdam`` / ``TowerAdamW``
+on CPU (``native=None``, the default, or True: :meth:`stepsize_tower.bases.adam.AdamRule.trail_dot`
+/ ``update_with_trail``), with the same math as :mod:`stepsize_tower.bases.compiled`;
+:func:`dot_and_max` is the read pass of ``TowerSGD`` with momentum
+(:meth:`stepsize_tower.bases.sgd.SGDRule.native_probe`). Per parameter tensor (float32 or float64;
 moments and trail in the same dtype): weights :math:`w`, gradient :math:`g`, moments
 :math:`m, v`, trail :math:`E`, trail weight :math:`\omega`, step count :math:`t` (already
 incremented), step size :math:`a`, weight decay :math:`\lambda`:
