@@ -33,7 +33,7 @@ import torch
 from torch import Tensor
 
 from . import clipping, distributed, trail
-from .bases import BaseRule, CompiledTrail
+from .bases import BaseRule, has_trail_kernels
 from .clipping import ClipSignal
 from .group_state import EFFECTIVE_LR_KEY, TOWER_KEY, new_tower_state, publish_effective_lr
 from .host_clock import Clock, clock_of, start_clock
@@ -273,7 +273,7 @@ def apply(
         return
     trails = trail.ensure(params, states)
     weight = 1.0 - horizon
-    if a0.shape[0] == 1 and isinstance(rule, CompiledTrail) and skip is None:
+    if a0.shape[0] == 1 and has_trail_kernels(rule) and skip is None:
         if rule.update_with_trail(group, params, grads, states, trails, a0[0], weight):
             return
 

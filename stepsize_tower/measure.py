@@ -10,7 +10,7 @@ import torch
 from torch import Tensor
 
 from . import distributed, trail
-from .bases import BaseRule, CompiledTrail, NativeProbe
+from .bases import BaseRule, has_native_probe, has_trail_kernels
 from .plan import Batch, Plan
 
 __all__ = ["Measurement", "complete_across_ranks", "grads_finite", "measure"]
@@ -87,9 +87,9 @@ def measure(rule: BaseRule, group: dict[str, Any], ts: dict[str, Tensor], plan: 
 def _native_probe(rule: BaseRule, group: dict[str, Any], plan: Plan, batch: Batch) -> tuple[Tensor, Tensor] | None:
     """The base's one-pass ``(<g_s, d_{0,s-1}>, max |g_s|)`` where only these are needed (one unit,
     no slope, no learned hyperparameters, no trail), else None."""
-    if not isinstance(rule, NativeProbe) or not plan.exact or plan.learns_hyperparams or plan.unit_index is not None:
+    if not plan.exact or plan.learns_hyperparams or plan.unit_index is not None or plan.sharded:
         return None
-    if plan.startup_test or plan.searching or plan.sharded or (plan.horizon > 0 and plan.levels):
+    if plan.startup_test or plan.searching or (plan.horizon > 0 and plan.levels) or not has_native_probe(rule):
         return None
     return rule.native_probe(group, batch.params, batch.grads, batch.states)
 
@@ -97,7 +97,7 @@ def _native_probe(rule: BaseRule, group: dict[str, Any], plan: Plan, batch: Batc
 def _trail_dot(rule: BaseRule, group: dict[str, Any], plan: Plan, batch: Batch, device: torch.device) -> Tensor:
     """``<g_s, D_{s-1}>`` per unit, kept as its moving average ``E = (1 - γ) D``: from the base's
     compiled read pass where it has one (one step size for the group), else tensor by tensor."""
-    if isinstance(rule, CompiledTrail) and batch.params and trail.has_trail(batch.states):
+    if has_trail_kernels(rule) and batch.params and trail.has_trail(batch.states):
         trails = [st[trail.TRAIL_KEY] for st in batch.states]
         fast = rule.trail_dot(group, batch.params, batch.grads, trails)
         if fast is not None:

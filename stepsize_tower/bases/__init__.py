@@ -8,7 +8,17 @@ fused kernels, where valid), ``compiled`` (the opt-in compiled Adam + trail kern
 
 from .adam import AdamRule
 from .grad import loss_grad
-from .protocol import BaseRule, CompiledTrail, NativeProbe, Probe
+from .protocol import BaseRule, CompiledTrail, NativeProbe, Probe, has_native_probe, has_trail_kernels
 from .sgd import SGDRule
 
-__all__ = ["AdamRule", "BaseRule", "CompiledTrail", "NativeProbe", "Probe", "SGDRule", "loss_grad"]
+__all__ = [
+    "AdamRule",
+    "BaseRule",
+    "CompiledTrail",
+    "NativeProbe",
+    "Probe",
+    "SGDRule",
+    "has_native_probe",
+    "has_trail_kernels",
+    "loss_grad",
+]

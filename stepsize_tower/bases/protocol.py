@@ -3,11 +3,11 @@
 from __future__ import annotations
 
 from collections.abc import Sequence
-from typing import Any, NamedTuple, Protocol, runtime_checkable
+from typing import Any, NamedTuple, Protocol, TypeGuard, runtime_checkable
 
 from torch import Tensor
 
-__all__ = ["BaseRule", "CompiledTrail", "Probe"]
+__all__ = ["BaseRule", "CompiledTrail", "NativeProbe", "Probe", "has_native_probe", "has_trail_kernels"]
 
 
 class Probe(NamedTuple):
@@ -133,3 +133,25 @@ class NativeProbe(Protocol):
     ) -> tuple[Tensor, Tensor] | None:
         """``(Σ <g_s, d_{0,s-1}>, max |g_s|)`` over the whole group, or None where it does not apply."""
         ...
+
+
+#: (class, protocol) -> whether the class implements it, decided once: a runtime protocol
+#: check scans the protocol's attributes each time (about 15 µs, several times per step).
+_IMPLEMENTS: dict[tuple[type, type], bool] = {}
+
+
+def _implements(rule: object, protocol: type) -> bool:
+    key = (type(rule), protocol)
+    if key not in _IMPLEMENTS:
+        _IMPLEMENTS[key] = isinstance(rule, protocol)
+    return _IMPLEMENTS[key]
+
+
+def has_trail_kernels(rule: object) -> TypeGuard[CompiledTrail]:
+    """``isinstance(rule, CompiledTrail)``, decided once per class."""
+    return _implements(rule, CompiledTrail)
+
+
+def has_native_probe(rule: object) -> TypeGuard[NativeProbe]:
+    """``isinstance(rule, NativeProbe)``, decided once per class."""
+    return _implements(rule, NativeProbe)
