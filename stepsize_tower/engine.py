@@ -22,7 +22,8 @@ none on accelerators: a skip or SGD's blow-up retreat is a mask on the device
 (:func:`_masked_step`; CPU groups keep the one read, :data:`MASK_ON_CPU`). Sharded
 groups read their reduced gradient count each step. All learned values stay tensors.
 A group with nothing to learn (depth 0, no learned hyperparameters) is the base optimizer
-itself, with non-finite steps skipped (:func:`plain_step`).
+itself, with non-finite steps skipped (:func:`plain_step`): on the CPU ``torch.optim``'s own
+update after one read, elsewhere the base's update with the skip as a mask (no read).
 """
 
 from __future__ import annotations
@@ -286,7 +287,12 @@ def apply(
 def plain_step(
     rule: BaseRule, group: dict[str, Any], state: Any, ts: dict[str, Tensor], batch: Batch, sharded: bool
 ) -> None:
-    """Depth 0, nothing learned: the base optimizer itself, with non-finite steps skipped."""
+    """Depth 0, nothing learned: the base optimizer itself, with non-finite steps skipped.
+
+    On the CPU it is ``torch.optim``'s own update (bitwise its default path) after one read of
+    the finiteness flag. Elsewhere (or with :data:`MASK_ON_CPU`) it reads nothing:
+    :func:`_masked_plain_step`.
+    """
     finite = grads_finite(batch.grads) if batch.grads else torch.ones((), dtype=torch.bool)
     if sharded:
         count, finite, _, _ = distributed.reduce_across_ranks(
@@ -294,6 +300,10 @@ def plain_step(
         )
         if count == 0:
             return
+    elif batch.params and (batch.params[0].device.type != "cpu" or MASK_ON_CPU):
+        _masked_plain_step(rule, group, ts, batch, finite)
+        _drop_empty_states(group, state, batch)
+        return
     if not bool(finite):
         ts["skipped"] += 1
         return
@@ -301,6 +311,29 @@ def plain_step(
     lr = torch.as_tensor(group["lr"], dtype=torch.float64, device=ts["step"].device).reshape(1)
     publish_effective_lr(group, lr)
     rule.torch_update(group, batch.params, batch.grads, batch.states)
+    _drop_empty_states(group, state, batch)
+
+
+def _masked_plain_step(
+    rule: BaseRule, group: dict[str, Any], ts: dict[str, Tensor], batch: Batch, finite: Tensor
+) -> None:
+    """Depth 0 with no host read: the base's own update at ``a_0 = lr``, undone where a gradient
+    is not finite (torch's fused kernels take the skip as ``found_inf``). The same update as
+    ``torch.optim`` up to rounding: fused kernels where they apply, which its default path on
+    an accelerator (foreach, step counts read per tensor) is not."""
+    skip = ~finite
+    ts["skipped"] += skip.to(ts["skipped"].dtype)
+    ts["step"] += finite.to(ts["step"].dtype)
+    lr = torch.as_tensor(group["lr"], dtype=torch.float64, device=ts["step"].device).reshape(1)
+    published = group.get(EFFECTIVE_LR_KEY)
+    publish_effective_lr(group, lr)
+    if published is not None:  # a skipped step leaves the published step size as it was
+        group[EFFECTIVE_LR_KEY] = torch.where(finite, group[EFFECTIVE_LR_KEY], published)
+    rule.update(group, None, batch.params, batch.grads, batch.states, [lr[0]] * len(batch.params), skip)
+
+
+def _drop_empty_states(group: dict[str, Any], state: Any, batch: Batch) -> None:
+    """A base that keeps nothing (plain SGD) leaves no state entry, as in ``torch.optim``."""
     for i, st in zip(batch.indices, batch.states, strict=True):
-        if not st:  # a base that keeps nothing (plain SGD): no entry, as in torch.optim
+        if not st:
             del state[group["params"][i]]
