@@ -115,19 +115,20 @@ def shard_group(params: list[Tensor]) -> Any:
 
 def reduce_across_ranks(
     count: int, finite: Tensor, sums: list[Tensor | None], gmax: Tensor | None, group: Any = None
-) -> tuple[int, Tensor, list[Tensor | None], Tensor | None]:
+) -> tuple[Tensor, Tensor, list[Tensor | None], Tensor | None]:
     """Complete this rank's partial values over ``group`` (default: the default process group).
 
     ``count`` (parameters with a gradient here), the flag ``not finite`` and every tensor of
     ``sums`` (``None`` entries are passed through) are packed into ONE float64 vector and
     all-reduced with SUM; ``gmax`` (the largest absolute gradient entry), when given, takes a
-    second all-reduce with MAX. Returns the total count, whether every rank was finite, the
-    summed tensors (in their shapes) and the global ``gmax``. Every rank gets bitwise the same
-    values, so every rank then takes the same decisions.
+    second all-reduce with MAX. Returns whether any rank had a gradient and whether every rank
+    was finite (0-dim bool tensors: nothing is read back to the host), the summed tensors (in
+    their shapes) and the global ``gmax``. Every rank gets bitwise the same values, so every
+    rank then takes the same decisions.
     """
     device = finite.device
     present = [s for s in sums if s is not None]
-    head = torch.stack([torch.tensor(float(count), dtype=torch.float64), (~finite).double().cpu()]).to(device)
+    head = torch.stack([torch.tensor(float(count), dtype=torch.float64, device=device), (~finite).double()])
     packed = torch.cat([head] + [s.reshape(-1).double().to(device) for s in present])
     dist.all_reduce(packed, op=dist.ReduceOp.SUM, group=group)
     out: list[Tensor | None] = []
@@ -143,4 +144,4 @@ def reduce_across_ranks(
         gmax_all = gmax.detach().double().reshape(1).clone()
         dist.all_reduce(gmax_all, op=dist.ReduceOp.MAX, group=group)
         gmax_all = gmax_all.reshape(())
-    return int(packed[0]), packed[1] == 0, out, gmax_all
+    return packed[0] > 0, packed[1] == 0, out, gmax_all

@@ -19,8 +19,8 @@
 Host reads: during the start-up window, one per group and step (the skip/retreat flags, which
 also keep the host's clock of the step count, :mod:`stepsize_tower.host_clock`); once settled,
 none on accelerators: a skip or SGD's blow-up retreat is a mask on the device
-(:func:`_masked_step`; CPU groups keep the one read, :data:`MASK_ON_CPU`). Sharded
-groups read their reduced gradient count each step. All learned values stay tensors.
+(:func:`_masked_step`; CPU groups keep the one read, :data:`MASK_ON_CPU`), also for sharded
+groups (a step no rank had a gradient for is masked too). All learned values stay tensors.
 A group with nothing to learn (depth 0, no learned hyperparameters) is the base optimizer
 itself, with non-finite steps skipped (:func:`plain_step`): on the CPU ``torch.optim``'s own
 update after one read, elsewhere the base's update with the skip as a mask (no read).
@@ -71,18 +71,19 @@ def step_group(rule: BaseRule, group: dict[str, Any], state: Any, owner: str) ->
     clock = _clock(group, ts, created)
     plan = make_plan(group, ts, rule, batch, sharded, clock)
     m = measure(rule, group, ts, plan, batch)
+    any_grad = None
     if sharded:  # partial sums over this rank's parameters: complete them before deciding
-        completed = complete_across_ranks(m, group, len(batch.params))
-        if completed is None:
-            return  # no rank had a gradient in this group
-        m = completed
+        m, any_grad = complete_across_ranks(m, group, len(batch.params))
+    masked = plan.settled and (device.type != "cpu" or MASK_ON_CPU)
+    if any_grad is not None and not masked and not bool(any_grad):
+        return  # no rank had a gradient in this group
     update_dot = _update_dot(plan, m)
     finite = _all_finite(m, update_dot)
     clip = _clip_signal(m)
     test = retreat_test(ts, m.prev_dot, m.gmax if plan.blowup_guard else None, plan.startup_test, clip)
     search_dot = keeps_searching(m.prev_dot, ts["prev_slope"]) if plan.searching else None
-    if plan.settled and not sharded and (device.type != "cpu" or MASK_ON_CPU):
-        _masked_step(rule, group, ts, plan, batch, m, update_dot, finite, test)
+    if masked:
+        _masked_step(rule, group, ts, plan, batch, m, update_dot, finite, test, any_grad)
         clock.raise_peak(host_lr(group))
         return
     skip, retreat = _read_outcome(ts, plan, clock, finite, test, search_dot, host_lr(group))
@@ -109,16 +110,19 @@ def _masked_step(
     update_dot: Tensor,
     finite: Tensor,
     test: tuple[Tensor, Tensor] | None,
+    any_grad: Tensor | None = None,
 ) -> None:
     """A settled step (after the start-up window) with no host read: the skip and SGD's
     blow-up retreat are masks on the device, and every update is taken or undone by them.
-    Where nothing fires the result is bitwise the unmasked step's."""
-    keep = finite
+    Where nothing fires the result is bitwise the unmasked step's. ``any_grad`` (sharded
+    groups): False where no rank had a gradient, a step that changes and counts nothing."""
+    present = torch.ones_like(finite) if any_grad is None else any_grad
+    keep = finite & present
     if test is not None:  # SGD's blow-up guard, the one test that runs after the window
-        fires = test[0] & finite
+        fires = test[0] & keep
         take_back(rule, group, ts, batch.params, batch.states, plan.unit_of, plan.a_prev, test[1], fires)
-        keep = finite & ~fires
-    ts["skipped"] += (~finite).to(ts["skipped"].dtype)
+        keep = keep & ~fires
+    ts["skipped"] += (~finite & present).to(ts["skipped"].dtype)
     published = group[EFFECTIVE_LR_KEY]
     a0 = learn(rule, group, ts, plan, batch, m, update_dot, None, keep)
     group[EFFECTIVE_LR_KEY] = torch.where(keep, group[EFFECTIVE_LR_KEY], published)
@@ -293,17 +297,19 @@ def plain_step(
     the finiteness flag. Elsewhere (or with :data:`MASK_ON_CPU`) it reads nothing:
     :func:`_masked_plain_step`.
     """
-    finite = grads_finite(batch.grads) if batch.grads else torch.ones((), dtype=torch.bool)
+    device = ts["step"].device
+    finite = grads_finite(batch.grads) if batch.grads else torch.ones((), dtype=torch.bool, device=device)
+    any_grad = None
     if sharded:
-        count, finite, _, _ = distributed.reduce_across_ranks(
+        any_grad, finite, _, _ = distributed.reduce_across_ranks(
             len(batch.params), finite, [], None, distributed.shard_group(group["params"])
         )
-        if count == 0:
-            return
-    elif batch.params and (batch.params[0].device.type != "cpu" or MASK_ON_CPU):
-        _masked_plain_step(rule, group, ts, batch, finite)
+    if device.type != "cpu" or MASK_ON_CPU:
+        _masked_plain_step(rule, group, ts, batch, finite, any_grad)
         _drop_empty_states(group, state, batch)
         return
+    if any_grad is not None and not bool(any_grad):
+        return  # no rank had a gradient in this group
     if not bool(finite):
         ts["skipped"] += 1
         return
@@ -315,20 +321,23 @@ def plain_step(
 
 
 def _masked_plain_step(
-    rule: BaseRule, group: dict[str, Any], ts: dict[str, Tensor], batch: Batch, finite: Tensor
+    rule: BaseRule, group: dict[str, Any], ts: dict[str, Tensor], batch: Batch, finite: Tensor, any_grad: Tensor | None
 ) -> None:
     """Depth 0 with no host read: the base's own update at ``a_0 = lr``, undone where a gradient
     is not finite (torch's fused kernels take the skip as ``found_inf``). The same update as
     ``torch.optim`` up to rounding: fused kernels where they apply, which its default path on
-    an accelerator (foreach, step counts read per tensor) is not."""
-    skip = ~finite
-    ts["skipped"] += skip.to(ts["skipped"].dtype)
-    ts["step"] += finite.to(ts["step"].dtype)
+    an accelerator (foreach, step counts read per tensor) is not. ``any_grad`` as in
+    :func:`_masked_step`."""
+    present = torch.ones_like(finite) if any_grad is None else any_grad
+    taken = finite & present
+    skip = ~taken
+    ts["skipped"] += (~finite & present).to(ts["skipped"].dtype)
+    ts["step"] += taken.to(ts["step"].dtype)
     lr = torch.as_tensor(group["lr"], dtype=torch.float64, device=ts["step"].device).reshape(1)
     published = group.get(EFFECTIVE_LR_KEY)
     publish_effective_lr(group, lr)
     if published is not None:  # a skipped step leaves the published step size as it was
-        group[EFFECTIVE_LR_KEY] = torch.where(finite, group[EFFECTIVE_LR_KEY], published)
+        group[EFFECTIVE_LR_KEY] = torch.where(taken, group[EFFECTIVE_LR_KEY], published)
     rule.update(group, None, batch.params, batch.grads, batch.states, [lr[0]] * len(batch.params), skip)
 
 

@@ -111,17 +111,16 @@ def _trail_dot(rule: BaseRule, group: dict[str, Any], plan: Plan, batch: Batch, 
     return _per_unit(plan, trail.dots(loss_grad, batch.params, batch.grads, batch.states, zero), device)
 
 
-def complete_across_ranks(m: Measurement, group: dict[str, Any], count: int) -> Measurement | None:
-    """The sums over every rank of a sharded group (one collective); None when no rank had a gradient."""
+def complete_across_ranks(m: Measurement, group: dict[str, Any], count: int) -> tuple[Measurement, Tensor]:
+    """The sums over every rank of a sharded group (one collective), and whether any rank had
+    a gradient (a 0-dim bool tensor, not read: where it is False the step changes nothing)."""
     sums = [m.prev_dot, m.slope, m.trail_dot, m.tangent_dots, m.grad_norm_sq]
-    total, finite, reduced, gmax = distributed.reduce_across_ranks(
+    any_grad, finite, reduced, gmax = distributed.reduce_across_ranks(
         count, m.finite, sums, m.gmax, distributed.shard_group(group["params"])
     )
-    if total == 0:
-        return None
     prev_dot, slope = reduced[0], reduced[1]
     assert prev_dot is not None and slope is not None
-    return replace(
+    completed = replace(
         m,
         prev_dot=prev_dot,
         slope=slope,
@@ -131,6 +130,7 @@ def complete_across_ranks(m: Measurement, group: dict[str, Any], count: int) -> 
         gmax=gmax,
         finite=finite,
     )
+    return completed, any_grad
 
 
 def _grad_max(grads: list[Tensor]) -> Tensor:

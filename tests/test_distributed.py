@@ -21,7 +21,7 @@ import pytest
 import torch
 from torch import nn
 
-from stepsize_tower import Level, TowerAdam, TowerSGD
+from stepsize_tower import Level, TowerAdam, TowerSGD, distributed
 
 dist = torch.distributed
 
@@ -321,6 +321,77 @@ def _fsdp_resume_worker(rank: int, kinds: tuple[str, ...], out: str) -> dict[str
     return result
 
 
+MASKED_STEPS, INF_STEP, NO_GRAD_STEP = 30, 20, 24
+
+
+def _masked_run(rank: int, kind: str, frame: str, masked: bool) -> dict[str, Any]:
+    """30 steps under ZeRO or FSDP2; at step 20 rank 0 alone has non-finite gradients, at step
+    24 no rank has a gradient for the second group. With ``masked``, settled steps take the
+    accelerators' path (``engine.MASK_ON_CPU``; level math on tensors in both runs), and host reads
+    (``aten::_local_scalar_dense`` and ``Tensor.tolist``) are counted from step 12 on."""
+    from torch.utils._python_dispatch import TorchDispatchMode
+
+    import stepsize_tower.bases.native as native
+    import stepsize_tower.engine as engine
+    import stepsize_tower.levels as levels
+
+    engine.MASK_ON_CPU, levels.HOST_MATH_MAX = masked, 0  # the level math as on an accelerator, both runs
+    native.available = lambda: False  # type: ignore[assignment]  # torch's kernels, as on an accelerator
+    reads = [0]
+
+    class Reads(TorchDispatchMode):
+        def __torch_dispatch__(self, func: Any, types: Any, args: Any = (), kwargs: Any = None) -> Any:
+            if func in (torch.ops.aten._local_scalar_dense.default, torch.ops.aten.item.default):
+                reads[0] += 1
+            return func(*args, **(kwargs or {}))
+
+    tolist = torch.Tensor.tolist
+
+    def counted(self: torch.Tensor) -> Any:
+        reads[0] += 1
+        return tolist(self)
+
+    cls, kw = _OPTIMIZERS[kind]
+    model: nn.Module = _model()
+    if frame == "fsdp":
+        from torch.distributed.fsdp import fully_shard
+
+        fully_shard(model)
+        opt = cls(_groups(model), sharded=True, **kw)
+        wrapped = model
+    else:
+        wrapped = nn.parallel.DistributedDataParallel(model)
+        opt = _make_zero(model, kind, True)
+    params = list(model.parameters())
+    batches = _batches()
+    for step in range(MASKED_STEPS):
+        x, y = _local(batches[step % len(batches)], rank)
+        opt.zero_grad()
+        nn.functional.mse_loss(wrapped(x), y).backward()
+        if step == INF_STEP and rank == 0:
+            for p in params:
+                distributed.shard(p.grad).fill_(float("inf"))
+        if step == NO_GRAD_STEP:
+            params[-1].grad = None
+        counting = masked and step >= 12
+        torch.Tensor.tolist = counted if counting else tolist  # type: ignore[method-assign]
+        try:
+            if counting:
+                with Reads():
+                    opt.step()
+            else:
+                opt.step()
+        finally:
+            torch.Tensor.tolist = tolist  # type: ignore[method-assign]
+    inner = opt.optim if frame == "zero" else opt
+    weights = [(p.full_tensor() if frame == "fsdp" else p).detach().clone() for p in params]
+    return {"reads": reads[0], "weights": weights, "sizes": inner.step_sizes(), "skipped": inner.skipped_steps()}
+
+
+def _masked_worker(rank: int, kind: str, frame: str) -> dict[str, Any]:
+    return {"masked": _masked_run(rank, kind, frame, True), "read": _masked_run(rank, kind, frame, False)}
+
+
 # ---------------------------------------------------------------------- tests
 
 
@@ -472,3 +543,19 @@ def test_sharded_option_is_validated_and_inert_without_process_group() -> None:
             o.step()
     assert opt.step_sizes() == ref.step_sizes()
     assert opt.param_groups[0]["sharded"] is True
+
+
+@pytest.mark.parametrize(("kind", "frame"), [("adam", "zero"), ("sgd", "fsdp")])
+def test_sharded_settled_steps_read_nothing_and_equal_the_read_path(tmp_path: Path, kind: str, frame: str) -> None:
+    """Sharded groups on the accelerators' path: no host read after the start-up window, a
+    skip on one rank is a skip on all, a step without any gradient changes nothing; the
+    result is the read path's bit for bit (reference: the read path, common practice)."""
+    results = _spawn(tmp_path, "_masked_worker", kind, frame)
+    for r in results:
+        masked, read = r["masked"], r["read"]
+        assert masked["reads"] == 0, f"{frame}/{kind}: {masked['reads']} host reads after the window"
+        assert masked["skipped"] == read["skipped"] >= 1, (masked["skipped"], read["skipped"])
+        assert masked["sizes"] == read["sizes"]
+        for a, b in zip(masked["weights"], read["weights"], strict=True):
+            assert torch.equal(a, b)
+    assert results[0]["masked"]["sizes"] == results[1]["masked"]["sizes"]
