@@ -42,7 +42,15 @@ from .hyperparams import hyperparam_step
 from .levels import Level, tower_step
 from .measure import Measurement, complete_across_ranks, grads_finite, measure
 from .plan import Batch, Plan, host_lr, make_plan
-from .safeguards import RETREAT_WINDOW, limit_first_step, retreat_test, take_back, typical_scale
+from .safeguards import (
+    FIRST_MOVE_LIMIT,
+    RETREAT_WINDOW,
+    Retreat,
+    limit_first_step,
+    retreat_test,
+    take_back,
+    typical_scale,
+)
 from .search import keeps_searching
 
 __all__ = ["MASK_ON_CPU", "step_group"]
@@ -92,7 +100,9 @@ def step_group(rule: BaseRule, group: dict[str, Any], state: Any, owner: str) ->
         return
     if retreat:
         assert test is not None
-        take_back(rule, group, ts, batch.params, batch.states, plan.unit_of, plan.a_prev, test[1])
+        take_back(
+            rule, group, ts, batch.params, batch.states, plan.unit_of, plan.a_prev, test.factor, None, test.change
+        )
         return
     a0 = learn(rule, group, ts, plan, batch, m, update_dot, search_dot)
     if clip is not None:
@@ -109,7 +119,7 @@ def _masked_step(
     m: Measurement,
     update_dot: Tensor,
     finite: Tensor,
-    test: tuple[Tensor, Tensor] | None,
+    test: Retreat | None,
     any_grad: Tensor | None = None,
 ) -> None:
     """A settled step (after the start-up window) with no host read: the skip and SGD's
@@ -120,7 +130,9 @@ def _masked_step(
     keep = finite & present
     if test is not None:  # SGD's blow-up guard, the one test that runs after the window
         fires = test[0] & keep
-        take_back(rule, group, ts, batch.params, batch.states, plan.unit_of, plan.a_prev, test[1], fires)
+        take_back(
+            rule, group, ts, batch.params, batch.states, plan.unit_of, plan.a_prev, test.factor, fires, test.change
+        )
         keep = keep & ~fires
     ts["skipped"] += (~finite & present).to(ts["skipped"].dtype)
     published = group[EFFECTIVE_LR_KEY]
@@ -139,7 +151,7 @@ def _read_outcome(
     plan: Plan,
     clock: Clock,
     finite: Tensor,
-    test: tuple[Tensor, Tensor] | None,
+    test: Retreat | None,
     search_dot: Tensor | None,
     lr: float | None,
 ) -> tuple[bool, bool]:
@@ -224,7 +236,10 @@ def learn(
         a0 = plan.lr0.expand(plan.units)
     limit = group.get("first_step_limit")
     if limit is not None and (plan.steps_taken == 0 or plan.rising) and plan.levels and rule.normalized:
-        a0 = limit_first_step(ts, a0, float(limit), _typical_scale(group, plan, batch, a0), keep)
+        a0 = limit_first_step(ts, a0, float(limit), _typical_scale(group, plan, batch.params, a0), keep)
+    elif plan.steps_taken == 0 and plan.levels and not rule.normalized:  # the move is a_0 times the gradient's size
+        move = _typical_scale(group, plan, batch.params, a0) / _typical_scale(group, plan, batch.grads, a0)
+        a0 = limit_first_step(ts, a0, FIRST_MOVE_LIMIT, move, keep)
     if u_before is not None and plan.horizon > 0 and not plan.rising:  # a capped warm-up step is no fall
         active = plan.steps_taken >= RETREAT_WINDOW
         trail.forget_larger_steps(ts, u_before, batch.states, plan.unit_of, keep, active)
@@ -242,9 +257,9 @@ def learn(
     return a0
 
 
-def _typical_scale(group: dict[str, Any], plan: Plan, batch: Batch, a0: Tensor) -> Tensor:
+def _typical_scale(group: dict[str, Any], plan: Plan, tensors: list[Tensor], a0: Tensor) -> Tensor:
     return typical_scale(
-        batch.params,
+        tensors,
         plan.unit_of,
         a0.shape[0],
         a0.device,

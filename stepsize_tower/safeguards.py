@@ -9,6 +9,17 @@ taken back and redone with that secant step size::
 
     w <- w_{s-2} - a_new d,   a_new = a_{0,s-1} * clip(1 / (1 - rho), RETREAT_MIN_FACTOR, 1/2)
 
+Right after a retreat, the retried step is taken back again only when ``rho < -10`` *and* its
+slope change ``c' = <g_{s-1} - g_s, d>`` is at most :data:`RETREAT_CURVATURE_JUMP` times the
+``f c`` that the first test's change predicts for the step ``f`` times shorter: on a quadratic
+``c`` is proportional to the step size, minibatch noise is not. After an exact secant cut the
+retried step sits on the quadratic's minimum, so in practice only a cut stopped at
+:data:`RETREAT_MIN_FACTOR` (still too large) is retried again.
+
+For SGD, whose update grows with the gradient, the first step moves the weights by at most
+:data:`FIRST_MOVE_LIMIT` times their typical size: a retreat undoes a step by arithmetic, which
+float32 cannot do after a step that dwarfs the weights.
+
 Later, minibatch noise alone makes ``rho < -1`` too often; only bases whose update grows
 with the gradient (SGD) keep a guard, against divergence: when the largest gradient entry
 exceeds ``r > RETREAT_BLOWUP`` times the largest seen so far, ``a_new = a_{0,s-1} / (1 + r)``.
@@ -49,7 +60,7 @@ tensor lives whole on one rank (the logs and counts are summed).
 
 from __future__ import annotations
 
-from typing import Any
+from typing import Any, NamedTuple
 
 import torch
 from torch import Tensor
@@ -61,15 +72,29 @@ from .clipping import ClipSignal
 from .group_state import EFFECTIVE_LR_KEY, publish_effective_lr
 
 __all__ = [
+    "FIRST_MOVE_LIMIT",
+    "NOT_SECANT",
     "RETREAT_AGAIN_RATIO",
     "RETREAT_BLOWUP",
+    "RETREAT_CURVATURE_JUMP",
     "RETREAT_MIN_FACTOR",
     "RETREAT_WINDOW",
+    "Retreat",
     "limit_first_step",
     "retreat_test",
     "take_back",
     "typical_scale",
 ]
+
+#: Bases whose update grows with the gradient (SGD): the first step moves the weights by at
+#: most this many times their typical size (``a_0 <= c · s_w / s_g``, ``s`` as in
+#: :func:`typical_scale`, weights and gradients). A guard of precision, not of tuning: a retreat
+#: undoes a step arithmetically (``w + (a - a') d``), which in float32 loses about ``1e-7 · a |d|``;
+#: after a first step 1e9 times too large (raw least squares, SGD typed 1 000, field benchmark)
+#: that error alone exceeded the weights and every later step retreated (loss 5e6 against 3.7
+#: in float64). Good first steps move far less (least squares at its best rate 0.003, the ResNet
+#: 0.03, logistic regression from a small initialization 2.9 times its weights).
+FIRST_MOVE_LIMIT = 10.0
 
 #: Smallest factor one retreat applies to the step size (retreats on later steps compound).
 RETREAT_MIN_FACTOR = 1e-4
@@ -83,6 +108,19 @@ RETREAT_WINDOW = 10
 #: the new minibatch alone can make ``rho`` mildly negative, but not by this much.
 RETREAT_AGAIN_RATIO = 10.0
 
+#: ... and only if its slope change ``c' = <g_{s-1} - g_s, d>`` is at most this many times the
+#: change the first test's curvature predicts for the smaller step, ``f c`` (on a quadratic
+#: ``c`` is proportional to the step size: ``c' = f c`` exactly). Minibatch noise does not
+#: shrink with the step size: measured (field benchmark, ResNet with SGD momentum typed 10, raw
+#: least squares with SGD typed 1 000), noise-driven retries showed ``c' / (f c)`` of 27-40 on
+#: every retry, cutting the step size 30x each time down to 1e-8 and 1e-26; a retry after a cut
+#: clipped at :data:`RETREAT_MIN_FACTOR` (a real overshoot, still too large) showed 0.7-2.8.
+RETREAT_CURVATURE_JUMP = 10.0
+
+#: ``ts["retreated"]`` after a retreat of the clipping or blow-up tests: its retried step is
+#: tested against ``-RETREAT_AGAIN_RATIO`` alone (their factors predict no slope change).
+NOT_SECANT = -1.0
+
 #: At any step, a step of a base whose update grows with the gradient (SGD) is taken back when
 #: the largest gradient entry exceeds this factor ``r`` times the largest one seen so far in the
 #: run (a divergence: near convergence, gradients far below the peak may jump by 10x harmlessly).
@@ -92,38 +130,61 @@ RETREAT_AGAIN_RATIO = 10.0
 RETREAT_BLOWUP = 10.0
 
 
+class Retreat(NamedTuple):
+    """A test's verdict (0-dim tensors): take the last step back, the factor on ``a_{0,s-1}``,
+    and the slope change ``c = <g_{s-1} - g_s, d_{0,s-1}>`` it saw (:data:`NOT_SECANT`: not the
+    secant test)."""
+
+    fires: Tensor
+    factor: Tensor
+    change: Tensor
+
+
 def retreat_test(
     ts: dict[str, Tensor],
     prev_dot: Tensor,
     gmax: Tensor | None,
     startup_test: bool,
     clip: ClipSignal | None = None,
-) -> tuple[Tensor, Tensor] | None:
-    """Whether to take the last step back (a bool tensor) and the factor on ``a_{0,s-1}``; no read.
+) -> Retreat | None:
+    """Whether to take the last step back, by what factor, and the slope change seen; no read.
 
     ``prev_dot``: ``<g_s, d_{0,s-1}>`` per unit; ``gmax``: the largest gradient entry when the
     blow-up guard runs; ``clip``: this step's gradient norm and largest entry during the
     start-up window (:mod:`stepsize_tower.clipping`). None when no test runs this step.
     """
-    tests: list[tuple[Tensor, Tensor]] = []  # (fires, factor on a_{0,s-1}), first firing wins
+    unchecked = torch.full_like(ts["retreated"], NOT_SECANT)
+    tests: list[Retreat] = []  # first firing wins
     if startup_test:  # the loss rose along the last step (secant ratio rho)
         prev_slope = ts["prev_slope"].sum()
         rho = prev_dot.sum() / prev_slope
-        threshold = torch.where(ts["retreated"].bool(), -RETREAT_AGAIN_RATIO, -1.0)
-        tests.append(((prev_slope > 0) & (rho < threshold), 1.0 / (1.0 - rho)))
+        change = prev_slope - prev_dot.sum()
+        tests.append(Retreat(_rose(ts["retreated"], prev_slope, rho, change), 1.0 / (1.0 - rho), change))
         if clip is not None:  # clipped gradients hide the rise: the direction reversed
-            tests.append(clipping.reversal(ts, rho, prev_slope, clip))
+            tests.append(Retreat(*clipping.reversal(ts, rho, prev_slope, clip), unchecked))
     if gmax is not None:  # any time (SGD): the largest gradient entry grew RETREAT_BLOWUP x
         blowup_ratio = gmax / ts["peak_gmax"]
-        tests.append(((ts["peak_gmax"] > 0) & (blowup_ratio > RETREAT_BLOWUP), 1.0 / (1.0 + blowup_ratio)))
+        fires = (ts["peak_gmax"] > 0) & (blowup_ratio > RETREAT_BLOWUP)
+        tests.append(Retreat(fires, 1.0 / (1.0 + blowup_ratio), unchecked))
     if not tests:
         return None
-    retreat, factor = tests[0][0], tests[-1][1]
-    for fires, _ in tests[1:]:
-        retreat = retreat | fires
-    for fires, candidate in reversed(tests[:-1]):
-        factor = torch.where(fires, candidate, factor)
-    return retreat, factor
+    retreat, factor, change = tests[0].fires, tests[-1].factor, tests[-1].change
+    for test in tests[1:]:
+        retreat = retreat | test.fires
+    for test in reversed(tests[:-1]):
+        factor = torch.where(test.fires, test.factor, factor)
+        change = torch.where(test.fires, test.change, change)
+    return Retreat(retreat, factor, change)
+
+
+def _rose(expected: Tensor, prev_slope: Tensor, rho: Tensor, change: Tensor) -> Tensor:
+    """The start-up test: the loss rose along the last step (``rho < -1``; right after a
+    retreat ``rho < -RETREAT_AGAIN_RATIO``, and only with a slope change the curvature seen by
+    that retreat can explain: ``change <= RETREAT_CURVATURE_JUMP * expected``)."""
+    again = expected != 0
+    threshold = torch.where(again, -RETREAT_AGAIN_RATIO, -1.0)
+    explained = ~again | (expected < 0) | (change <= RETREAT_CURVATURE_JUMP * expected)
+    return (prev_slope > 0) & (rho < threshold) & explained
 
 
 def take_back(
@@ -136,14 +197,21 @@ def take_back(
     a_prev: Tensor,
     factor: Tensor,
     fires: Tensor | None = None,
+    change: Tensor | None = None,
 ) -> None:
     """Take the last step back and redo it with ``a_prev * factor`` (clipped); the levels stay as they are.
+
+    ``change``: the slope change the test saw (:data:`NOT_SECANT` or None: not the secant
+    test); the retried step is expected to show ``factor * change`` (kept in ``ts["retreated"]``).
 
     With ``fires`` (a 0-dim bool tensor) it is masked, with no host read: where ``fires`` is
     False the factor is exactly 1, so the weights move by ``(a - a) d = 0``, ``log 1 = 0`` is
     added to ``u_0``, and the trail and counters stay as they are.
     """
     factor = torch.clamp(factor, min=RETREAT_MIN_FACTOR, max=0.5)
+    if change is None:
+        change = torch.full_like(ts["retreated"], NOT_SECANT)
+    expected = torch.where(change < 0, NOT_SECANT, factor * change).to(ts["retreated"])
     if fires is not None:
         factor = torch.where(fires, factor, 1.0)
     a_new = a_prev * factor
@@ -162,12 +230,12 @@ def take_back(
         if "search" in ts:  # a step too large ends the growth search
             ts["search"].fill_(-1.0)
         ts["retreats"] += 1
-        ts["retreated"].fill_(1)
+        ts["retreated"].copy_(expected)
         return
     if "search" in ts:
         ts["search"].copy_(torch.where(fires, -1.0, ts["search"]))
     ts["retreats"] += fires.to(ts["retreats"].dtype)
-    ts["retreated"].copy_(torch.where(fires, 1.0, ts["retreated"]))
+    ts["retreated"].copy_(torch.where(fires, expected, ts["retreated"]))
     if before is not None:
         group[EFFECTIVE_LR_KEY] = torch.where(fires, group[EFFECTIVE_LR_KEY], before)
 

@@ -83,8 +83,8 @@ _OPTIMIZERS: dict[str, tuple[type, dict[str, Any]]] = {
     "sgd": (TowerSGD, {"lr": 1e-2, "momentum": 0.9}),
     # Learned betas: the tangent dot products are reduced as well.
     "adam_betas": (TowerAdam, {"lr": 1e-2, "learn_betas": True}),
-    # SGD with momentum at a typed step size 30x too large: it retreats at steps 5-7 and 13.
-    "sgd_retreats": (TowerSGD, {"lr": 0.3, "momentum": 0.9}),
+    # SGD with momentum at a typed step size 100x too large: it retreats at steps 1, 5, 6, 8 and 12.
+    "sgd_retreats": (TowerSGD, {"lr": 1.0, "momentum": 0.9}),
     # An SGD-like level: its step is proportional to the hypergradient, so a dot product
     # counted twice (once per replica) would show in the step size.
     "adam_sgd_level": (TowerAdam, {"lr": 1e-2, "levels": [Level("sgd", lr=10.0)]}),

@@ -27,6 +27,7 @@ import torch
 from torch import Tensor
 
 from stepsize_tower import Level, TowerAdam, TowerAdamW, TowerSGD
+from stepsize_tower.safeguards import RETREAT_MIN_FACTOR
 
 DTYPE = torch.float64
 WINDOW = 10  # the start-up window, in taken steps (README)
@@ -76,9 +77,10 @@ def _base_state(opt: torch.optim.Optimizer, p: Tensor) -> dict[str, Tensor]:
     return {k: v.clone() for k, v in opt.state[p].items() if k in keys}
 
 
-@pytest.mark.parametrize("name", list(BASES))
-def test_a_retreat_redoes_the_last_step_at_the_secant_step_size_then_again_from_there(name: str) -> None:
-    cls, ref_cls, kwargs = BASES[name]
+def _one_retreat(name: str, first_rho: float) -> tuple[Any, Tensor, Tensor, dict[str, Tensor], Tensor, float]:
+    """Three agreeing steps, a fourth, then a gradient with ``rho = first_rho`` along it:
+    returns the optimizer, the weights, ``w_{s-2}``, its base state, ``g_{s-1}`` and ``a_{s-1}``."""
+    cls, _, kwargs = BASES[name]
     w = torch.linspace(-1.0, 1.0, 6, dtype=DTYPE).requires_grad_()
     opt = cls([w], horizon=0.0, **kwargs)
     for s in range(1, 4):  # three agreeing steps
@@ -91,19 +93,35 @@ def test_a_retreat_redoes_the_last_step_at_the_secant_step_size_then_again_from_
     opt.step()  # step s-1, at a_{s-1}
     a_last = _level0(opt)
     assert opt.retreats() == 0  # type: ignore[attr-defined]
-
-    # The next gradient points back along the step, three times as steep: rho = -3 exactly,
-    # and 1 / (1 - rho) = 1/4 (a secant factor of -1/rho would give 1/3).
-    w.grad = -3.0 * g_last
+    w.grad = first_rho * g_last  # the next gradient points back along the step, |rho| times as steep
     opt.step()
     assert opt.retreats() == 1  # type: ignore[attr-defined]
+    return opt, w, before, state_before, g_last, a_last
+
+
+@pytest.mark.parametrize("name", list(BASES))
+def test_a_retreat_redoes_the_last_step_at_the_secant_step_size(name: str) -> None:
+    """rho = -3 exactly: 1 / (1 - rho) = 1/4 (a secant factor of -1/rho would give 1/3).
+    Reference: the torch.optim step from ``w_{s-2}`` at the new step size."""
+    _, ref_cls, kwargs = BASES[name]
+    opt, w, before, state_before, g_last, a_last = _one_retreat(name, -3.0)
     a_new = a_last / 4
     assert _level0(opt) == pytest.approx(a_new, rel=1e-14)
     redone = _torch_step_from(ref_cls, kwargs, before, state_before, g_last, a_new)
     torch.testing.assert_close(w.detach(), redone, rtol=1e-13, atol=1e-15)
 
-    # Right after a retreat only rho < -10 takes the step back again: rho = -30 gives 1/31 of the
-    # step size the redone step used (a_new, not the a_{s-1} it replaced).
+
+@pytest.mark.parametrize("name", list(BASES))
+def test_after_a_cut_clipped_at_the_smallest_factor_the_retried_step_is_taken_back_again(name: str) -> None:
+    """rho = -1e5 asks for 1/(1 + 1e5); the cut stops at RETREAT_MIN_FACTOR = 1e-4, so the
+    retried step still overshoots: its slope change (rho' = -30: 31 slopes) is what the first
+    change predicts for a step 1e4 times shorter (1e5 + 1 slopes / 1e4), within 10x. Right after
+    a retreat only rho < -10 takes the step back again, by 1/31 of the step size the redone
+    step used. Reference: the torch.optim step from ``w_{s-2}``."""
+    _, ref_cls, kwargs = BASES[name]
+    opt, w, before, state_before, g_last, a_last = _one_retreat(name, -1e5)
+    a_new = a_last * RETREAT_MIN_FACTOR
+    assert _level0(opt) == pytest.approx(a_new, rel=1e-14)
     w.grad = -30.0 * g_last
     opt.step()
     assert opt.retreats() == 2  # type: ignore[attr-defined]
@@ -111,6 +129,22 @@ def test_a_retreat_redoes_the_last_step_at_the_secant_step_size_then_again_from_
     assert _level0(opt) == pytest.approx(a_again, rel=1e-14)
     redone = _torch_step_from(ref_cls, kwargs, before, state_before, g_last, a_again)
     torch.testing.assert_close(w.detach(), redone, rtol=1e-13, atol=1e-15)
+
+
+@pytest.mark.parametrize("name", ["adam", "adamw"])
+def test_a_retried_step_whose_rise_the_curvature_cannot_explain_is_kept(name: str) -> None:
+    """After the exact secant cut (rho = -3, 1/4) the retried step lands on the minimum of the
+    quadratic through both slopes: its slope change should be a quarter of the first (one
+    slope). rho' = -30 is a change of 31 slopes, more than 10x that: minibatch noise, which
+    does not shrink with the step size (common practice: a quadratic's slope change is
+    proportional to the step). The step is kept. (SGD's blow-up guard would take it back: its
+    gradient is 30x larger.)"""
+    opt, w, *_ = _one_retreat(name, -3.0)
+    a_new = _level0(opt)
+    w.grad = -30.0 * _grad(4)
+    opt.step()
+    assert opt.retreats() == 1  # type: ignore[attr-defined]
+    assert _level0(opt) != pytest.approx(a_new / 31, rel=1e-3)
 
 
 @pytest.mark.parametrize("name", ["sgd", "adam"])

@@ -101,7 +101,8 @@ def init_tower_state(levels: Sequence[Level], units: int, device: torch.device) 
       ``prev_slope`` [U]: ``<g_{s-1}, d_{0,s-1}>``, the last step's directional slope.
       ``peak_gmax`` []: the largest absolute gradient entry of all taken steps (SGD's guard).
       ``search`` [U]: steps of the growth search so far, or -1 once it has ended.
-      ``step``, ``skipped``, ``retreats`` []: counters; ``retreated`` []: 1 if the last call retreated.
+      ``step``, ``skipped``, ``retreats`` []: counters; ``retreated`` []: 0, or after a retreat the
+      slope change its retried step is expected to show (-1 after a retreat not of the secant test).
     """
     d = len(levels)
     kw: dict[str, Any] = {"dtype": STATE_DTYPE, "device": device}
