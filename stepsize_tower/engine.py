@@ -41,7 +41,7 @@ from .host_clock import Clock, clock_of, start_clock
 from .hyperparams import hyperparam_step
 from .levels import Level, tower_step
 from .measure import Measurement, complete_across_ranks, grads_finite, measure
-from .plan import Batch, Plan, host_lr, make_plan
+from .plan import Batch, Plan, host_lr, lr_tensor, make_plan
 from .safeguards import (
     FIRST_MOVE_LIMIT,
     RETREAT_WINDOW,
@@ -329,7 +329,7 @@ def plain_step(
         ts["skipped"] += 1
         return
     ts["step"] += 1
-    lr = torch.as_tensor(group["lr"], dtype=torch.float64, device=ts["step"].device).reshape(1)
+    lr = lr_tensor(group, ts)
     publish_effective_lr(group, lr)
     rule.torch_update(group, batch.params, batch.grads, batch.states)
     _drop_empty_states(group, state, batch)
@@ -348,7 +348,7 @@ def _masked_plain_step(
     skip = ~taken
     ts["skipped"] += (~finite & present).to(ts["skipped"].dtype)
     ts["step"] += taken.to(ts["step"].dtype)
-    lr = torch.as_tensor(group["lr"], dtype=torch.float64, device=ts["step"].device).reshape(1)
+    lr = lr_tensor(group, ts)
     published = group.get(EFFECTIVE_LR_KEY)
     publish_effective_lr(group, lr)
     if published is not None:  # a skipped step leaves the published step size as it was

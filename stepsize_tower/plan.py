@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import weakref
 from dataclasses import dataclass
 from typing import Any
 
@@ -14,7 +15,7 @@ from .host_clock import Clock
 from .levels import Level
 from .safeguards import RETREAT_WINDOW
 
-__all__ = ["Batch", "Plan", "host_lr", "make_plan"]
+__all__ = ["Batch", "Plan", "host_lr", "lr_tensor", "make_plan"]
 
 
 @dataclass(frozen=True)
@@ -62,6 +63,27 @@ class Plan:
     rising: bool
 
 
+#: ``id(step tensor) -> (weak reference to it, last float lr, its tensor)``, per group. Not a
+#: ``WeakKeyDictionary``: its lookups compare tensors with ``==``, a host read (host_clock.py).
+_LR_TENSORS: dict[int, tuple[weakref.ref[Tensor], float, Tensor]] = {}
+
+
+def lr_tensor(group: dict[str, Any], ts: dict[str, Tensor]) -> Tensor:
+    """``group["lr"]`` as a float64 tensor of shape [1] on the group's device, made once per
+    value: a float ``lr`` that does not change costs no host-to-device copy per step (a copy
+    from host memory cannot be captured in a CUDA graph). Never written in place."""
+    lr, device = group["lr"], ts["step"].device
+    if isinstance(lr, Tensor):
+        return torch.as_tensor(lr, dtype=torch.float64, device=device).reshape(1)
+    step, key = ts["step"], id(ts["step"])
+    cached = _LR_TENSORS.get(key)
+    if cached is not None and cached[0]() is step and cached[1] == lr and cached[2].device == device:
+        return cached[2]
+    made = torch.as_tensor(lr, dtype=torch.float64, device=device).reshape(1)
+    _LR_TENSORS[key] = (weakref.ref(step, lambda _: _LR_TENSORS.pop(key, None)), lr, made)
+    return made
+
+
 def make_plan(
     group: dict[str, Any], ts: dict[str, Tensor], rule: BaseRule, batch: Batch, sharded: bool, clock: Clock
 ) -> Plan:
@@ -70,7 +92,7 @@ def make_plan(
     units = ts["log_step"].shape[0]
     per_tensor = group["granularity"] == "tensor"
     unit_of = list(batch.indices) if per_tensor else [0] * len(batch.params)
-    lr0 = torch.as_tensor(group["lr"], dtype=torch.float64, device=ts["step"].device).reshape(1)
+    lr0 = lr_tensor(group, ts)
     search_max_move = group.get("growth_search") if levels and "search" in ts else None
     steps_taken, searching = clock.steps_taken, clock.searching and search_max_move is not None
     horizon = float(group["horizon"])

@@ -246,3 +246,24 @@ def test_depth0_masked_equals_torch_optim_and_skips_the_nonfinite_step(config: C
             assert torch.equal(p, q), f"{config.name}: weight {name} differs from torch.optim: {(p - q).abs().max()}"
     assert opt.skipped_steps() == 1, "the non-finite step was not skipped"
     assert float(opt.param_groups[0]["effective_lr"]) == opt.param_groups[0]["lr"]
+
+
+def test_an_unchanged_lr_is_made_into_a_tensor_once_and_a_changed_one_anew() -> None:
+    """``plan.lr_tensor``: the step's ``lr`` on the device without a host-to-device copy per
+    step while it stays the same (common practice: a CUDA graph cannot capture such a copy)."""
+    from stepsize_tower.plan import lr_tensor
+
+    model = _model()
+    opt = TowerAdam(model.parameters(), lr=1e-3)
+    for step in range(3):
+        opt.zero_grad()
+        x, y = _batch(step)
+        nn.functional.mse_loss(model(x), y).backward()
+        opt.step()
+    group = opt.param_groups[0]
+    first = lr_tensor(group, group["tower"])
+    assert lr_tensor(group, group["tower"]) is first
+    group["lr"] = 2e-3  # a scheduler's new value
+    second = lr_tensor(group, group["tower"])
+    assert second is not first
+    assert float(second) == 2e-3 and float(first) == 1e-3  # the old tensor is never written
