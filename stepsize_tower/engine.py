@@ -237,7 +237,7 @@ def learn(
     limit = group.get("first_step_limit")
     if limit is not None and (plan.steps_taken == 0 or plan.rising) and plan.levels and rule.normalized:
         a0 = limit_first_step(ts, a0, float(limit), _typical_scale(group, plan, batch.params, a0), keep)
-    elif plan.steps_taken == 0 and plan.levels and not rule.normalized:  # the move is a_0 times the gradient's size
+    elif plan.steps_taken == 0 and plan.levels and not rule.normalized and group["retreat"]:  # so a retreat can undo it
         move = _typical_scale(group, plan, batch.params, a0) / _typical_scale(group, plan, batch.grads, a0)
         a0 = limit_first_step(ts, a0, FIRST_MOVE_LIMIT, move, keep)
     if u_before is not None and plan.horizon > 0 and not plan.rising:  # a capped warm-up step is no fall

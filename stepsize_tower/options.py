@@ -315,7 +315,8 @@ TOWER_OPTIONS: tuple[Option, ...] = (
         "retreat",
         "during the first steps, when the next gradient shows the loss rose along the last step, take it "
         "back and redo it with the secant step size; for SGD, also at any step when the gradient blows up "
-        "past 10x its peak",
+        "past 10x its peak, and the first step moves the weights at most 10x their typical size (so that "
+        "float32 can undo it)",
         _check_bool("retreat"),
         legacy=True,
     ),

@@ -86,7 +86,7 @@ __all__ = [
     "typical_scale",
 ]
 
-#: Bases whose update grows with the gradient (SGD): the first step moves the weights by at
+#: Bases whose update grows with the gradient (SGD), with ``retreat`` on: the first step moves the weights by at
 #: most this many times their typical size (``a_0 <= c · s_w / s_g``, ``s`` as in
 #: :func:`typical_scale`, weights and gradients). A guard of precision, not of tuning: a retreat
 #: undoes a step arithmetically (``w + (a - a') d``), which in float32 loses about ``1e-7 · a |d|``;

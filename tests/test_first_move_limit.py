@@ -83,3 +83,15 @@ def test_a_float32_first_step_a_billion_times_too_large_is_undone_to_float32_pre
         want = w - a_new * g
         err = float((p.detach().double() - want).abs().max())
         assert err <= 1e-5 * float(want.abs().max()), (err, float(want.abs().max()))
+
+
+def test_without_retreats_the_first_step_is_torch_sgds_at_the_typed_lr() -> None:
+    """The limit exists so that a retreat can undo the step: ``retreat=False`` keeps the typed
+    rate. Reference: ``torch.optim.SGD`` at lr 1e4."""
+    model, ref = _model(), _model()
+    opt = TowerSGD(model.parameters(), lr=1e4, retreat=False)
+    _first_step(model, opt)
+    assert opt.step_sizes()[0][0] == 1e4
+    _first_step(ref, torch.optim.SGD(ref.parameters(), lr=1e4))
+    for p, q in zip(model.parameters(), ref.parameters(), strict=True):
+        torch.testing.assert_close(p, q, rtol=1e-12, atol=1e-14)
