@@ -82,7 +82,7 @@ def step_group(rule: BaseRule, group: dict[str, Any], state: Any, owner: str) ->
     any_grad = None
     if sharded:  # partial sums over this rank's parameters: complete them before deciding
         m, any_grad = complete_across_ranks(m, group, len(batch.params))
-    masked = plan.settled and (device.type != "cpu" or MASK_ON_CPU)
+    masked = plan.settled and _masks_on(device)
     if any_grad is not None and not masked and not bool(any_grad):
         return  # no rank had a gradient in this group
     update_dot = _update_dot(plan, m)
@@ -101,7 +101,7 @@ def step_group(rule: BaseRule, group: dict[str, Any], state: Any, owner: str) ->
     if retreat:
         assert test is not None
         take_back(
-            rule, group, ts, batch.params, batch.states, plan.unit_of, plan.a_prev, test.factor, None, test.change
+            rule, group, ts, batch.params, batch.states, plan.unit_of, plan.a_prev, test.factor, change=test.change
         )
         return
     a0 = learn(rule, group, ts, plan, batch, m, update_dot, search_dot)
@@ -126,19 +126,41 @@ def _masked_step(
     blow-up retreat are masks on the device, and every update is taken or undone by them.
     Where nothing fires the result is bitwise the unmasked step's. ``any_grad`` (sharded
     groups): False where no rank had a gradient, a step that changes and counts nothing."""
-    present = torch.ones_like(finite) if any_grad is None else any_grad
-    keep = finite & present
+    keep = _count_skip(ts, finite, any_grad)
     if test is not None:  # SGD's blow-up guard, the one test that runs after the window
         fires = test[0] & keep
         take_back(
-            rule, group, ts, batch.params, batch.states, plan.unit_of, plan.a_prev, test.factor, fires, test.change
+            rule,
+            group,
+            ts,
+            batch.params,
+            batch.states,
+            plan.unit_of,
+            plan.a_prev,
+            test.factor,
+            fires,
+            change=test.change,
         )
         keep = keep & ~fires
-    ts["skipped"] += (~finite & present).to(ts["skipped"].dtype)
     published = group[EFFECTIVE_LR_KEY]
     a0 = learn(rule, group, ts, plan, batch, m, update_dot, None, keep)
     group[EFFECTIVE_LR_KEY] = torch.where(keep, group[EFFECTIVE_LR_KEY], published)
     apply(rule, group, ts.get("hyper_value"), plan, batch, a0, skip=~keep)
+
+
+def _masks_on(device: torch.device) -> bool:
+    """Whether steps on ``device`` take the masked path (no host read) where they may."""
+    return device.type != "cpu" or MASK_ON_CPU
+
+
+def _count_skip(ts: dict[str, Tensor], finite: Tensor, any_grad: Tensor | None) -> Tensor:
+    """Masked: count a non-finite step as skipped; returns whether the step is taken.
+
+    ``any_grad`` (sharded groups): False where no rank had a gradient, a step that changes and
+    counts nothing."""
+    present = torch.ones_like(finite) if any_grad is None else any_grad
+    ts["skipped"] += (~finite & present).to(ts["skipped"].dtype)
+    return finite & present
 
 
 def _clock(group: dict[str, Any], ts: dict[str, Tensor], created: bool) -> Clock:
@@ -238,8 +260,8 @@ def learn(
     if limit is not None and (plan.steps_taken == 0 or plan.rising) and plan.levels and rule.normalized:
         a0 = limit_first_step(ts, a0, float(limit), _typical_scale(group, plan, batch.params, a0), keep)
     elif plan.steps_taken == 0 and plan.levels and not rule.normalized and group["retreat"]:  # so a retreat can undo it
-        move = _typical_scale(group, plan, batch.params, a0) / _typical_scale(group, plan, batch.grads, a0)
-        a0 = limit_first_step(ts, a0, FIRST_MOVE_LIMIT, move, keep)
+        per_unit_lr = _typical_scale(group, plan, batch.params, a0) / _typical_scale(group, plan, batch.grads, a0)
+        a0 = limit_first_step(ts, a0, FIRST_MOVE_LIMIT, per_unit_lr, keep)
     if u_before is not None and plan.horizon > 0 and not plan.rising:  # a capped warm-up step is no fall
         active = plan.steps_taken >= RETREAT_WINDOW
         trail.forget_larger_steps(ts, u_before, batch.states, plan.unit_of, keep, active)
@@ -319,7 +341,7 @@ def plain_step(
         any_grad, finite, _, _ = distributed.reduce_across_ranks(
             len(batch.params), finite, [], None, distributed.shard_group(group["params"])
         )
-    if device.type != "cpu" or MASK_ON_CPU:
+    if _masks_on(device):
         _masked_plain_step(rule, group, ts, batch, finite, any_grad)
         _drop_empty_states(group, state, batch)
         return
@@ -343,17 +365,14 @@ def _masked_plain_step(
     ``torch.optim`` up to rounding: fused kernels where they apply, which its default path on
     an accelerator (foreach, step counts read per tensor) is not. ``any_grad`` as in
     :func:`_masked_step`."""
-    present = torch.ones_like(finite) if any_grad is None else any_grad
-    taken = finite & present
-    skip = ~taken
-    ts["skipped"] += (~finite & present).to(ts["skipped"].dtype)
+    taken = _count_skip(ts, finite, any_grad)
     ts["step"] += taken.to(ts["step"].dtype)
     lr = lr_tensor(group, ts)
     published = group.get(EFFECTIVE_LR_KEY)
     publish_effective_lr(group, lr)
     if published is not None:  # a skipped step leaves the published step size as it was
         group[EFFECTIVE_LR_KEY] = torch.where(taken, group[EFFECTIVE_LR_KEY], published)
-    rule.update(group, None, batch.params, batch.grads, batch.states, [lr[0]] * len(batch.params), skip)
+    rule.update(group, None, batch.params, batch.grads, batch.states, [lr[0]] * len(batch.params), ~taken)
 
 
 def _drop_empty_states(group: dict[str, Any], state: Any, batch: Batch) -> None:

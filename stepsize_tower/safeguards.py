@@ -197,20 +197,19 @@ def take_back(
     a_prev: Tensor,
     factor: Tensor,
     fires: Tensor | None = None,
-    change: Tensor | None = None,
+    *,
+    change: Tensor,
 ) -> None:
     """Take the last step back and redo it with ``a_prev * factor`` (clipped); the levels stay as they are.
 
-    ``change``: the slope change the test saw (:data:`NOT_SECANT` or None: not the secant
-    test); the retried step is expected to show ``factor * change`` (kept in ``ts["retreated"]``).
+    ``change``: the slope change the test saw (:data:`NOT_SECANT`: not the secant test); the
+    retried step is expected to show ``factor * change`` (kept in ``ts["retreated"]``).
 
     With ``fires`` (a 0-dim bool tensor) it is masked, with no host read: where ``fires`` is
     False the factor is exactly 1, so the weights move by ``(a - a) d = 0``, ``log 1 = 0`` is
     added to ``u_0``, and the trail and counters stay as they are.
     """
     factor = torch.clamp(factor, min=RETREAT_MIN_FACTOR, max=0.5)
-    if change is None:
-        change = torch.full_like(ts["retreated"], NOT_SECANT)
     expected = torch.where(change < 0, NOT_SECANT, factor * change).to(ts["retreated"])
     if fires is not None:
         factor = torch.where(fires, factor, 1.0)

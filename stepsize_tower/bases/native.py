@@ -180,6 +180,13 @@ def _kernels() -> ModuleType:
     return _module
 
 
+def _l2_params(params: Sequence[Tensor] | None, l2: float) -> list[Tensor]:
+    """The weights a read pass needs for L2 decay ``l2`` (none without it)."""
+    if l2 != 0 and params is None:
+        raise ValueError("L2 weight decay needs params")
+    return list(params) if params is not None else []
+
+
 def trail_dot(
     grads: Sequence[Tensor],
     trails: Sequence[Tensor],
@@ -198,9 +205,7 @@ def trail_dot(
     if not grads:
         return torch.zeros((), dtype=torch.float64)
     l2 = float(weight_decay) if not decoupled else 0.0
-    if l2 != 0 and params is None:
-        raise ValueError("L2 weight decay needs params")
-    return _kernels().trail_dot(grads, trails, list(params) if params is not None else [], l2, bool(maximize))  # type: ignore[no-any-return]
+    return _kernels().trail_dot(grads, trails, _l2_params(params, l2), l2, bool(maximize))  # type: ignore[no-any-return]
 
 
 def dot_and_max(
@@ -223,9 +228,7 @@ def dot_and_max(
         zero = torch.zeros((), dtype=torch.float64)
         return zero, zero.clone()
     l2 = float(weight_decay)
-    if l2 != 0 and params is None:
-        raise ValueError("L2 weight decay needs params")
-    dot, largest = _kernels().dot_and_max(grads, others, list(params) if params is not None else [], l2, bool(maximize))
+    dot, largest = _kernels().dot_and_max(grads, others, _l2_params(params, l2), l2, bool(maximize))
     return torch.tensor(dot, dtype=torch.float64), torch.tensor(largest, dtype=torch.float64)
 
 
