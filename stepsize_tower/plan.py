@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import weakref
+from collections.abc import Callable
 from dataclasses import dataclass
 from typing import Any
 
@@ -15,7 +16,7 @@ from .host_clock import Clock
 from .levels import Level
 from .safeguards import RETREAT_WINDOW
 
-__all__ = ["Batch", "Plan", "host_lr", "lr_tensor", "make_plan"]
+__all__ = ["Batch", "Plan", "host_lr", "lr_tensor", "make_plan", "unit_index"]
 
 
 @dataclass(frozen=True)
@@ -63,25 +64,38 @@ class Plan:
     rising: bool
 
 
-#: ``id(step tensor) -> (weak reference to it, last float lr, its tensor)``, per group. Not a
-#: ``WeakKeyDictionary``: its lookups compare tensors with ``==``, a host read (host_clock.py).
-_LR_TENSORS: dict[int, tuple[weakref.ref[Tensor], float, Tensor]] = {}
+#: ``(name, id(step tensor)) -> (weak reference to it, the value, its tensor)``, per group. Not
+#: a ``WeakKeyDictionary``: its lookups compare tensors with ``==``, a host read (host_clock.py).
+_MADE: dict[tuple[str, int], tuple[weakref.ref[Tensor], Any, Tensor]] = {}
+
+
+def _made_once(name: str, step: Tensor, value: Any, make: Callable[[], Tensor]) -> Tensor:
+    """``make()``, kept for the group whose step counter is ``step`` while ``value`` is unchanged:
+    a host-to-device copy per step is neither free nor capturable in a CUDA graph. The kept
+    tensor is never written in place; a new value makes a new tensor."""
+    key = (name, id(step))
+    kept = _MADE.get(key)
+    if kept is not None and kept[0]() is step and kept[1] == value and kept[2].device == step.device:
+        return kept[2]
+    made = make()
+    _MADE[key] = (weakref.ref(step, lambda _: _MADE.pop(key, None)), value, made)
+    return made
 
 
 def lr_tensor(group: dict[str, Any], ts: dict[str, Tensor]) -> Tensor:
     """``group["lr"]`` as a float64 tensor of shape [1] on the group's device, made once per
-    value: a float ``lr`` that does not change costs no host-to-device copy per step (a copy
-    from host memory cannot be captured in a CUDA graph). Never written in place."""
+    value: a float ``lr`` that does not change costs no host-to-device copy per step."""
     lr, device = group["lr"], ts["step"].device
     if isinstance(lr, Tensor):
         return torch.as_tensor(lr, dtype=torch.float64, device=device).reshape(1)
-    step, key = ts["step"], id(ts["step"])
-    cached = _LR_TENSORS.get(key)
-    if cached is not None and cached[0]() is step and cached[1] == lr and cached[2].device == device:
-        return cached[2]
-    made = torch.as_tensor(lr, dtype=torch.float64, device=device).reshape(1)
-    _LR_TENSORS[key] = (weakref.ref(step, lambda _: _LR_TENSORS.pop(key, None)), lr, made)
-    return made
+    return _made_once("lr", ts["step"], lr, lambda: torch.as_tensor(lr, dtype=torch.float64, device=device).reshape(1))
+
+
+def unit_index(unit_of: list[int], ts: dict[str, Tensor]) -> Tensor:
+    """The unit of each tensor of the batch as an index tensor on the group's device, made
+    once per set of tensors with a gradient (the same every step in the usual loop)."""
+    device = ts["step"].device
+    return _made_once("units", ts["step"], tuple(unit_of), lambda: torch.tensor(unit_of, device=device))
 
 
 def make_plan(
@@ -103,7 +117,7 @@ def make_plan(
         levels=levels,
         units=units,
         unit_of=unit_of,
-        unit_index=torch.tensor(unit_of, device=ts["step"].device) if per_tensor else None,
+        unit_index=unit_index(unit_of, ts) if per_tensor else None,
         a_prev=ts["prev_step"][:, 0] if levels else ts.get("prev_lr", lr0).expand(units),
         lr0=lr0,
         horizon=horizon,

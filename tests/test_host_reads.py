@@ -267,3 +267,30 @@ def test_an_unchanged_lr_is_made_into_a_tensor_once_and_a_changed_one_anew() -> 
     second = lr_tensor(group, group["tower"])
     assert second is not first
     assert float(second) == 2e-3 and float(first) == 1e-3  # the old tensor is never written
+
+
+def test_the_per_tensor_unit_index_is_made_once_per_set_of_tensors_with_gradients(
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
+    """With ``granularity="tensor"`` each tensor's unit goes to the device as an index tensor:
+    made once while the same tensors have gradients, anew when the set changes (common
+    practice, as for the lr above)."""
+    from stepsize_tower import plan
+
+    made: list[torch.Tensor] = []
+    original = plan.unit_index
+    monkeypatch.setattr(plan, "unit_index", lambda unit_of, ts: made.append(original(unit_of, ts)) or made[-1])
+    model = _model()
+    opt = TowerAdam(model.parameters(), lr=1e-3, granularity="tensor")
+    last = list(model.parameters())[-1]
+    for step in range(5):
+        opt.zero_grad()
+        x, y = _batch(step)
+        nn.functional.mse_loss(model(x), y).backward()
+        if step == 4:
+            last.grad = None  # one tensor without a gradient: another set of units
+        opt.step()
+    n = len(list(model.parameters()))
+    assert all(t is made[0] for t in made[:-1]), "the index was made again for the same tensors"
+    assert made[0].tolist() == list(range(n))
+    assert made[-1] is not made[0] and made[-1].tolist() == list(range(n - 1))
