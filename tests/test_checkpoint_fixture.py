@@ -4,7 +4,10 @@
 dict saved after 6 steps (``tests/fixtures/make_tower_checkpoint.py``, not to be regenerated). The
 reference is torch.optim's checkpoint contract: loading it (``torch.load(weights_only=True)``)
 into fresh objects and taking the next steps gives bit for bit what the same run gives without
-the interruption.
+the interruption. The checkpoint's 6 steps were taken on one CPU; where this CPU's float64
+kernels round differently (the uninterrupted run's weights after 6 steps are not the saved ones
+bit for bit), the resumed run is compared to 1e-9 relative instead: a wrong or dropped piece of
+state moves it by far more than rounding.
 """
 
 from __future__ import annotations
@@ -39,7 +42,10 @@ def test_the_fixture_is_the_0_1_0_release(checkpoint: dict[str, Any]) -> None:
 def test_release_checkpoint_resumes_exactly_like_the_uninterrupted_run(checkpoint: dict[str, Any], name: str) -> None:
     entry = checkpoint["entries"][name]
     straight_model, straight = make(name)
-    train(straight_model, straight, range(STEPS_BEFORE + STEPS_AFTER))
+    train(straight_model, straight, range(STEPS_BEFORE))
+    same_cpu = all(torch.equal(v, entry["model"][k]) for k, v in straight_model.state_dict().items())
+    train(straight_model, straight, range(STEPS_BEFORE, STEPS_BEFORE + STEPS_AFTER))
+    same = torch.equal if same_cpu else _close
 
     model, opt = make(name)
     model.load_state_dict(entry["model"])
@@ -48,8 +54,13 @@ def test_release_checkpoint_resumes_exactly_like_the_uninterrupted_run(checkpoin
     train(model, opt, range(STEPS_BEFORE, STEPS_BEFORE + STEPS_AFTER))
 
     for p, q in zip(model.parameters(), straight_model.parameters(), strict=True):
-        assert torch.equal(p, q)
-    assert opt.step_sizes() == straight.step_sizes()  # type: ignore[attr-defined]
+        assert same(p, q)
+    got, want = opt.step_sizes(), straight.step_sizes()  # type: ignore[attr-defined]
+    assert same(torch.tensor(got, dtype=torch.float64), torch.tensor(want, dtype=torch.float64))
     for p, q in zip(model.parameters(), straight_model.parameters(), strict=True):
         for key, value in straight.state[q].items():
-            assert torch.equal(opt.state[p][key], value), key
+            assert same(opt.state[p][key], value), key
+
+
+def _close(a: torch.Tensor, b: torch.Tensor) -> bool:
+    return bool(torch.allclose(a, b, rtol=1e-9, atol=1e-12, equal_nan=True))
