@@ -26,16 +26,20 @@ EFFECTIVE_LR_KEY = "effective_lr"
 
 def levels_of(group: dict[str, Any]) -> tuple[Level, ...]:
     """The group's levels (validated, immutable; cached: a step needs them every time)."""
-    # A level saved before ``shrink`` existed had the symmetric rule: it resumes with it.
+    # A level saved before ``shrink`` or ``consistency`` existed had the plain rule: it resumes with it.
     return _levels_from(
-        tuple((s["kind"], s["lr"], tuple(s["betas"]), s["eps"], s.get("shrink", 1.0)) for s in group["levels"])
+        tuple(
+            (s["kind"], s["lr"], tuple(s["betas"]), s["eps"], s.get("shrink", 1.0), s.get("consistency", 0.0))
+            for s in group["levels"]
+        )
     )
 
 
 @functools.lru_cache(maxsize=256)
-def _levels_from(key: tuple[tuple[str, float, tuple[float, ...], float, float], ...]) -> tuple[Level, ...]:
+def _levels_from(key: tuple[tuple[str, float, tuple[float, ...], float, float, float], ...]) -> tuple[Level, ...]:
     return tuple(
-        Level(kind=k, lr=lr, betas=(betas[0], betas[1]), eps=eps, shrink=shrink) for k, lr, betas, eps, shrink in key
+        Level(kind=k, lr=lr, betas=(b[0], b[1]), eps=eps, shrink=shrink, consistency=c)
+        for k, lr, b, eps, shrink, c in key
     )
 
 

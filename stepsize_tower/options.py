@@ -83,7 +83,7 @@ DEFAULT_FIRST_STEP_LIMIT = 0.1
 DEFAULT_HYPER_LEVEL = Level(kind="adam", lr=0.01)
 
 #: The keys of a level given as a dict (JSON / YAML): the fields of :class:`Level`.
-LEVEL_KEYS = ("kind", "lr", "betas", "eps", "shrink")
+LEVEL_KEYS = ("kind", "lr", "betas", "eps", "shrink", "consistency")
 
 #: Top-level step size of a level stack, by depth (index = depth).
 _TOP_LR = {1: 0.05, 2: 0.01}
@@ -158,7 +158,14 @@ def _as_level(i: int, lv: Level | str | dict[str, Any]) -> Level:
 def level_spec(level: Level | dict[str, Any]) -> dict[str, Any]:
     """A level as a plain dict (not a dataclass), so checkpoints load with ``torch.load(weights_only=True)``."""
     lv = level if isinstance(level, Level) else Level(**level)
-    return {"kind": lv.kind, "lr": lv.lr, "betas": tuple(lv.betas), "eps": lv.eps, "shrink": lv.shrink}
+    return {
+        "kind": lv.kind,
+        "lr": lv.lr,
+        "betas": tuple(lv.betas),
+        "eps": lv.eps,
+        "shrink": lv.shrink,
+        "consistency": lv.consistency,
+    }
 
 
 # --------------------------------------------------------------------------- checks

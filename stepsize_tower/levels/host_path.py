@@ -53,7 +53,8 @@ def _directions(levels: Sequence[Level], hyper: list[float], unit: _Unit, count:
         v = b2 * unit.exp_avg_sq[k] + (1 - b2) * h * h
         unit.exp_avg[k], unit.exp_avg_sq[k] = m, v
         if lv.kind == "adam":
-            direction.append((m / (1 - b1**count)) / (math.sqrt(v / (1 - b2**count)) + lv.eps))
+            d = (m / (1 - b1**count)) / (math.sqrt(v / (1 - b2**count)) + lv.eps)
+            direction.append(d * min(abs(d), 1.0) ** lv.consistency if lv.consistency else d)
         else:
             direction.append(h)
     return direction

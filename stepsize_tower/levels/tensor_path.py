@@ -63,6 +63,9 @@ def _directions(
     m = torch.lerp(exp_avg, hyper, 1 - beta1)
     v = beta2 * exp_avg_sq + (1 - beta2) * hyper * hyper
     adam_dir = moment_direction(m, v, 1 - beta1**count, 1 - beta2**count, eps)
+    if any(lv.consistency for lv in levels):
+        power = torch.tensor([lv.consistency for lv in levels], dtype=hyper.dtype, device=hyper.device)
+        adam_dir = adam_dir * adam_dir.abs().clamp_max(1.0) ** power
     return m, v, torch.where(is_adam, adam_dir, hyper)
 
 
