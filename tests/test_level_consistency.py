@@ -19,10 +19,9 @@ import torch
 
 from stepsize_tower import TowerAdam, TowerSGD
 from stepsize_tower.levels import Level, init_tower_state
-from stepsize_tower.levels.spec import MAX_LOG_CHANGE
 from stepsize_tower.levels.host_path import tower_step_host
+from stepsize_tower.levels.spec import MAX_LOG_CHANGE
 from stepsize_tower.levels.tensor_path import tower_step_tensors
-
 from tests.test_noisy_quadratic import best_fixed_step, run_noisy
 
 UNITS = 8
@@ -115,7 +114,7 @@ def test_a_consistency_outside_zero_to_four_is_refused_with_its_range(bad: objec
 
 
 def test_consistency_on_an_sgd_level_is_refused_with_the_fix() -> None:
-    with pytest.raises(ValueError, match="needs kind='adam'.*use consistency=0"):
+    with pytest.raises(ValueError, match=r"needs kind='adam'.*use consistency=0"):
         Level("sgd", consistency=1.0)
 
 
