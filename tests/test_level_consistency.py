@@ -1,9 +1,9 @@
-"""``Level.consistency``: each move of an Adam-like level is weighed by ``min(|d|, 1)^c``.
+"""``Level.consistency``: each lowering move of an Adam-like level is weighed by ``min(d, 1)^c``.
 
 Reference: the plain level rule of the published method (moments of the hypergradient,
 ``d = m̂ / (sqrt(v̂) + eps)``, move ``a_k d``), run from the same state; ``consistency=0`` must
-be it exactly and ``consistency=c`` must make each move ``min(|d|, 1)^c`` times the plain one,
-where ``d`` is the plain move over ``a_k`` (common practice for a reweighted step rule: an
+be it and ``consistency=c`` must make each lowering move (``d > 0``) ``min(d, 1)^c`` times the
+plain one and each raising move the plain one (common practice for a reweighted step rule: an
 identity per unit and step). The end-to-end cases use the noisy quadratic model (Zhang et al.,
 NeurIPS 2019) at its closed-form best fixed step size, where the greedy hypergradient drifts
 towards smaller steps on noise, and a noiseless quadratic overshot by a far too large step,
@@ -61,10 +61,11 @@ def _published_direction() -> torch.Tensor:
 
 @pytest.mark.parametrize("path", [tower_step_host, tower_step_tensors], ids=["host", "tensor"])
 @pytest.mark.parametrize("consistency", [0.0, 0.5, 1.0, 2.0])
-def test_each_move_is_the_published_move_weighed_by_its_consistency(path: object, consistency: float) -> None:
+def test_each_lowering_move_is_the_published_move_weighed_by_its_consistency(path: object, consistency: float) -> None:
     d = _published_direction()
-    assert (d.abs() < 0.5).any() and (d.abs() > 1).any(), "the case must hold weak and saturated directions"
-    weighed = LEVEL_LR * d * d.abs().clamp_max(1.0) ** consistency
+    assert ((d > 0) & (d < 0.5)).any() and (d > 1).any(), "the case must hold weak and saturated lowering moves"
+    assert ((d < 0) & (d > -1)).any(), "the case must hold weak raising moves (left as they are)"
+    weighed = LEVEL_LR * torch.where(d > 0, d * d.clamp(0.0, 1.0) ** consistency, d)
     expected = -weighed.clamp(-MAX_LOG_CHANGE, MAX_LOG_CHANGE)  # u_0 moves against the direction
     torch.testing.assert_close(_moves(path, consistency), expected, rtol=1e-12, atol=1e-15)
 

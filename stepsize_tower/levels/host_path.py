@@ -54,7 +54,8 @@ def _directions(levels: Sequence[Level], hyper: list[float], unit: _Unit, count:
         unit.exp_avg[k], unit.exp_avg_sq[k] = m, v
         if lv.kind == "adam":
             d = (m / (1 - b1**count)) / (math.sqrt(v / (1 - b2**count)) + lv.eps)
-            direction.append(d * min(abs(d), 1.0) ** lv.consistency if lv.consistency else d)
+            lowers = d > 0  # u_{k-1} moves by -a_k d: a positive direction lowers the step size
+            direction.append(d * min(d, 1.0) ** lv.consistency if lv.consistency and lowers else d)
         else:
             direction.append(h)
     return direction

@@ -66,15 +66,18 @@ class Level:
             hypergradient asks to shrink even at the best constant rate (short-horizon bias);
             a value below 1 discounts that evidence. Measured, opt-in: experiments/README.md,
             "Discounting the evidence for shrinking".
-        consistency: for ``kind="adam"``, how much a move is weighed by how consistent its
-            evidence is. The direction :math:`d_k = \hat m / (\sqrt{\hat v} + \epsilon)`
-            has :math:`|d_k| \approx 1` when the hypergradient keeps one sign and is small
-            when it is noise around a weak drift; the level moves by
+        consistency: for ``kind="adam"``, how much a move that LOWERS the step size below
+            this level is weighed by how consistent its evidence is. The direction
+            :math:`d_k = \hat m / (\sqrt{\hat v} + \epsilon)` is near 1 when the
+            hypergradient keeps one sign and small when it is noise around a weak drift; the
+            level moves :math:`u_{k-1}` by
 
-            .. math:: a_k \, d_k \, \min(|d_k|, 1)^{\text{consistency}}
+            .. math:: -a_k \, d_k \, w_k, \qquad
+                w_k = \min(d_k, 1)^{\text{consistency}} \text{ if } d_k > 0 \text{ (lowering), else } 1
 
-            0 (the default) is the plain rule; 1 slows a drift of ``|d| = 0.25`` fourfold and
-            leaves a consistent move (``|d| \to 1``) as it was. Measured, opt-in:
+            0 is the plain rule. Under gradient noise the greedy hypergradient drifts towards
+            smaller steps (short-horizon bias); this discounts a weak drift (0.5 slows a drift
+            of ``d = 0.25`` twofold) and leaves raising moves as they are. Measured:
             experiments/README.md, "Weighing moves by their consistency".
     """
 

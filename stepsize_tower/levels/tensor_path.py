@@ -65,7 +65,8 @@ def _directions(
     adam_dir = moment_direction(m, v, 1 - beta1**count, 1 - beta2**count, eps)
     if any(lv.consistency for lv in levels):
         power = torch.tensor([lv.consistency for lv in levels], dtype=hyper.dtype, device=hyper.device)
-        adam_dir = adam_dir * adam_dir.abs().clamp_max(1.0) ** power
+        lowers = adam_dir > 0  # u_{k-1} moves by -a_k d: a positive direction lowers the step size
+        adam_dir = torch.where(lowers, adam_dir * adam_dir.clamp(0.0, 1.0) ** power, adam_dir)
     return m, v, torch.where(is_adam, adam_dir, hyper)
 
 
