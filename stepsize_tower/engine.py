@@ -11,7 +11,8 @@
                reversed) or the gradient blew up (SGD's blow-up guard)
                -> retreat, retreats += 1          (safeguards.retreat_test / take_back, clipping)
     learn      learned momentum / betas (hyperparams.hyperparam_step), then the levels,
-               top-down, with the growth search -> a_{0,s} (levels.tower_step),
+               top-down, with the growth search -> a_{0,s} (levels.tower_step); while a
+               schedule anneals lr, level 1 holds back its lowering moves  (schedule_anneal)
                cut by the first-step limit on the first step and on steps
                whose lr rises above its peak (a warm-up)                 (safeguards.limit_first_step)
     apply      w_s = w_{s-1} - a_{0,s} d_{0,s} (the base's update), folded into the trail  (trail)
@@ -51,6 +52,7 @@ from .safeguards import (
     take_back,
     typical_scale,
 )
+from .schedule_anneal import keep_peak, levels_while_annealing
 from .search import keeps_searching
 
 __all__ = ["MASK_ON_CPU", "step_group"]
@@ -78,6 +80,8 @@ def step_group(rule: BaseRule, group: dict[str, Any], state: Any, owner: str) ->
         return
     clock = _clock(group, ts, created)
     plan = make_plan(group, ts, rule, batch, sharded, clock)
+    if plan.annealing:
+        keep_peak(ts, clock)
     m = measure(rule, group, ts, plan, batch)
     any_grad = None
     if sharded:  # partial sums over this rank's parameters: complete them before deciding
@@ -253,7 +257,8 @@ def learn(
         ts["prev_lr"] = plan.lr0 if keep is None or "prev_lr" not in ts else torch.where(keep, plan.lr0, ts["prev_lr"])
     u_before = ts["log_step"][:, 0].clone() if plan.levels else None
     if plan.levels:
-        a0 = tower_step(ts, plan.levels, update_dot, group["lr"], search_dot, plan.search_max_move, keep)
+        levels = levels_while_annealing(plan.levels) if plan.annealing else plan.levels
+        a0 = tower_step(ts, levels, update_dot, group["lr"], search_dot, plan.search_max_move, keep)
     else:
         a0 = plan.lr0.expand(plan.units)
     limit = group.get("first_step_limit")

@@ -40,6 +40,8 @@ class Clock:
     #: ``lr`` is above it is "rising" (a warm-up), and Adam-like bases cap it like a first step.
     #: Once settled, every step's ``lr`` counts (whether it was taken is not read).
     peak_lr: float = 0.0
+    #: The ``peak_lr`` stored in the tower state (``schedule_anneal.keep_peak``), 0 if none.
+    peak_kept: float = 0.0
 
     @property
     def settled(self) -> bool:
@@ -85,16 +87,21 @@ def start_clock(ts: dict[str, Tensor], search_on: bool) -> Clock:
     return _keep(ts["step"], Clock(steps_taken=0, searching=search_on and "search" in ts))
 
 
+#: Tower-state key of the largest ``lr``, kept once a schedule lowered it (``schedule_anneal``).
+PEAK_LR_KEY = "peak_lr"
+
+
 def clock_of(ts: dict[str, Tensor], search_on: bool, lr: float | None = None) -> Clock:
     """The group's mirror; read from the device once for a state this process did not create."""
     clock = _lookup(ts["step"])
     if clock is None:
-        if search_on and "search" in ts:
-            counters = torch.stack([ts["step"], (ts["search"] >= 0).any().to(ts["step"].dtype)]).tolist()
-        else:
-            counters = [ts["step"].item(), 0.0]
-        clock = Clock(steps_taken=int(counters[0]), searching=bool(counters[1]))
-        if clock.steps_taken > 0:  # resumed: the lr in effect is the peak known
+        searching = (ts["search"] >= 0).any() if search_on and "search" in ts else torch.zeros((), dtype=torch.bool)
+        kept = ts.get(PEAK_LR_KEY, torch.zeros((), dtype=torch.float64))
+        step, search, peak = torch.stack(
+            [ts["step"].double(), searching.to(ts["step"].device).double(), kept.to(ts["step"].device).double()]
+        ).tolist()
+        clock = Clock(steps_taken=int(step), searching=bool(search), peak_lr=peak, peak_kept=peak)
+        if clock.steps_taken > 0:  # resumed: the lr in effect, or the peak a schedule lowered it from
             clock.raise_peak(lr)
         _keep(ts["step"], clock)
     return clock

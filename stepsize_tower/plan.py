@@ -62,6 +62,9 @@ class Plan:
     settled: bool
     #: ``group["lr"]`` is above its largest value of the taken steps (the first step, a warm-up).
     rising: bool
+    #: ``group["lr"]`` is below that largest value: a schedule is annealing it
+    #: (:mod:`stepsize_tower.schedule_anneal`).
+    annealing: bool = False
 
 
 #: ``(name, id(step tensor)) -> (weak reference to it, the value, its tensor)``, per group. Not
@@ -132,6 +135,7 @@ def make_plan(
         exact=horizon == 0 or startup_test or searching,
         settled=clock.settled,
         rising=bool(levels) and lr is not None and lr > clock.peak_lr,
+        annealing=bool(levels) and lr is not None and lr < clock.peak_lr,
     )
 
 
