@@ -64,7 +64,7 @@ class Plan:
     rising: bool
     #: ``group["lr"]`` is below that largest value: a schedule is annealing it
     #: (:mod:`stepsize_tower.schedule_anneal`).
-    annealing: bool = False
+    annealing: bool
 
 
 #: ``(name, id(step tensor)) -> (weak reference to it, the value, its tensor)``, per group. Not

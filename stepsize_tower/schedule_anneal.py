@@ -23,6 +23,7 @@ then, never before), so a resumed or copied optimizer anneals on the same steps.
 from __future__ import annotations
 
 import dataclasses
+import functools
 
 import torch
 from torch import Tensor
@@ -40,10 +41,15 @@ SCHEDULE_SHRINK = 0.1
 
 def levels_while_annealing(levels: tuple[Level, ...]) -> tuple[Level, ...]:
     """``levels`` with level 1's ``shrink`` multiplied by :data:`SCHEDULE_SHRINK`."""
+    return _held_back(levels, SCHEDULE_SHRINK)
+
+
+@functools.lru_cache(maxsize=64)
+def _held_back(levels: tuple[Level, ...], factor: float) -> tuple[Level, ...]:
+    """Made once per stack of levels (and factor), not on every annealing step."""
     if not levels:
         return levels
-    first = dataclasses.replace(levels[0], shrink=levels[0].shrink * SCHEDULE_SHRINK)
-    return (first, *levels[1:])
+    return (dataclasses.replace(levels[0], shrink=levels[0].shrink * factor), *levels[1:])
 
 
 def keep_peak(ts: dict[str, Tensor], clock: Clock) -> None:
