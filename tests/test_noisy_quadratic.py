@@ -39,27 +39,44 @@ def expected_loss(a: float, noise: float, steps: int = STEPS) -> float:
     return float(0.5 * np.sum(h * (r_t + a * a * noise * h * geometric)))
 
 
-def best_fixed_step(noise: float) -> tuple[float, float]:
-    """``(a*, E[L_T](a*))``: the best fixed step size for the budget, by bounded scalar search."""
+def minimize_step(loss: Callable[[float], float], bounds: tuple[float, float], xatol: float) -> tuple[float, float]:
+    """``(a, loss(a))`` at the minimum of ``log loss(a)`` over ``log a`` in ``bounds`` (bounded scalar search)."""
     res = minimize_scalar(
-        lambda log_a: np.log(expected_loss(float(np.exp(log_a)), noise)),
-        bounds=(np.log(1e-5), np.log(1.999)),
+        lambda log_a: np.log(loss(float(np.exp(log_a)))),
+        bounds=(np.log(bounds[0]), np.log(bounds[1])),
         method="bounded",
-        options={"xatol": 1e-6},
+        options={"xatol": xatol},
     )
     a = float(np.exp(res.x))
-    return a, expected_loss(a, noise)
+    return a, loss(a)
 
 
-def run_noisy(make: Callable[..., torch.optim.Optimizer], lr: float, noise: float, seed: int) -> tuple[float, float]:
-    """Final loss and final step size of ``make([w], lr=lr)`` on one noisy run (its own defaults otherwise)."""
+def best_fixed_step(noise: float) -> tuple[float, float]:
+    """``(a*, E[L_T](a*))``: the best fixed step size for the budget, by bounded scalar search."""
+    return minimize_step(lambda a: expected_loss(a, noise), (1e-5, 1.999), 1e-6)
+
+
+def run_noisy(
+    make: Callable[..., torch.optim.Optimizer],
+    lr: float,
+    noise: float,
+    seed: int,
+    factor: Callable[[int], float] | None = None,
+) -> tuple[float, float]:
+    """Final loss and final step size of ``make([w], lr=lr)`` on one noisy run (its own defaults otherwise).
+
+    ``factor``: a ``LambdaLR`` factor of the step, stepped after every optimizer step (None: no schedule).
+    """
     gen = torch.Generator().manual_seed(seed)
     h = torch.tensor(CURVATURES)
     w = torch.nn.Parameter(torch.ones(DIM, dtype=torch.float64))
     opt = make([w], lr=lr)
+    sched = torch.optim.lr_scheduler.LambdaLR(opt, factor) if factor is not None else None
     for _ in range(STEPS):
         w.grad = h * w.detach() + torch.randn(DIM, generator=gen, dtype=torch.float64) * (noise * h).sqrt()
         opt.step()
+        if sched is not None:
+            sched.step()
     final_step = opt.step_sizes()[0][0] if hasattr(opt, "step_sizes") else lr
     return float(0.5 * (h * w.detach() ** 2).sum()), final_step
 

@@ -20,21 +20,18 @@ from typing import Any
 import numpy as np
 import pytest
 import torch
-from scipy.optimize import minimize_scalar
 from torch import nn
 
 import stepsize_tower.engine as engine
 import stepsize_tower.schedule_anneal as schedule_anneal
 from stepsize_tower import Level, TowerAdam, TowerSGD
 from stepsize_tower.schedule_anneal import PEAK_LR_KEY
+from tests.test_noisy_quadratic import CURVATURES, SEEDS, minimize_step, run_noisy
+from tests.test_noisy_quadratic import STEPS as NQM_STEPS
+from tests.tiny_net import tanh_module
 
 STEPS = 60
 DECAY = 25  # the schedule is constant, then decays from this step on
-
-
-def _model() -> nn.Module:
-    torch.manual_seed(0)
-    return nn.Sequential(nn.Linear(8, 32), nn.Tanh(), nn.Linear(32, 1)).double()
 
 
 def _batch(step: int) -> tuple[torch.Tensor, torch.Tensor]:
@@ -54,7 +51,7 @@ def _warmup(step: int) -> float:
 def _train(
     make: Callable[..., torch.optim.Optimizer], factor: Callable[[int], float], steps: range, state: Any = None
 ) -> tuple[nn.Module, torch.optim.Optimizer, Any]:
-    model = _model()
+    model = tanh_module()
     opt = make(model.parameters())
     sched = torch.optim.lr_scheduler.LambdaLR(opt, factor)
     if state is not None:
@@ -144,8 +141,6 @@ def test_without_the_kept_peak_a_resumed_run_would_differ() -> None:
 
 # ---------------------------------------------------------------- the noisy quadratic model
 
-DIM, NQM_STEPS, SEEDS = 100, 1000, 4
-CURVATURES = np.logspace(-3, 0, DIM)
 WARM = round(0.05 * NQM_STEPS)
 
 
@@ -157,7 +152,7 @@ def _cosine(t: int) -> float:
 
 
 def _expected_loss(a: float, noise: float) -> float:
-    second = np.ones(DIM)
+    second = np.ones(len(CURVATURES))
     for t in range(NQM_STEPS):
         at = a * _cosine(t)
         second = (1.0 - at * CURVATURES) ** 2 * second + at * at * noise * CURVATURES
@@ -166,27 +161,11 @@ def _expected_loss(a: float, noise: float) -> float:
 
 @functools.lru_cache(maxsize=2)
 def _best_scheduled(noise: float) -> tuple[float, float]:
-    res = minimize_scalar(
-        lambda log_a: np.log(_expected_loss(float(np.exp(log_a)), noise)),
-        bounds=(np.log(1e-4), np.log(4.0)),
-        method="bounded",
-        options={"xatol": 1e-4},
-    )
-    a = float(np.exp(res.x))
-    return a, _expected_loss(a, noise)
+    return minimize_step(lambda a: _expected_loss(a, noise), (1e-4, 4.0), 1e-4)
 
 
 def _tower_sgd_on_schedule(lr: float, noise: float, seed: int) -> float:
-    gen = torch.Generator().manual_seed(seed)
-    h = torch.tensor(CURVATURES)
-    w = nn.Parameter(torch.ones(DIM, dtype=torch.float64))
-    opt = TowerSGD([w], lr=lr)
-    sched = torch.optim.lr_scheduler.LambdaLR(opt, _cosine)
-    for _ in range(NQM_STEPS):
-        w.grad = h * w.detach() + torch.randn(DIM, generator=gen, dtype=torch.float64) * (noise * h).sqrt()
-        opt.step()
-        sched.step()
-    return float(0.5 * (h * w.detach() ** 2).sum())
+    return run_noisy(TowerSGD, lr, noise, seed, factor=_cosine)[0]
 
 
 # Measured, mean loss ÷ the best scheduled SGD's expected loss (4 seeds): with the hold-back

@@ -18,13 +18,9 @@ from torch import nn
 import stepsize_tower.engine as engine
 from stepsize_tower import TowerAdam, TowerAdamW
 from stepsize_tower.options import DEFAULT_FIRST_STEP_LIMIT
+from tests.tiny_net import tanh_module
 
 WARM = 40
-
-
-def _model() -> nn.Module:
-    torch.manual_seed(0)
-    return nn.Sequential(nn.Linear(8, 32), nn.Tanh(), nn.Linear(32, 1)).double()
 
 
 def _batch(step: int) -> tuple[torch.Tensor, torch.Tensor]:
@@ -42,7 +38,7 @@ def _run(
     factor: Callable[[int], float], lr: float, steps: int, make: Callable[..., torch.optim.Optimizer] = TowerAdam
 ) -> list[tuple[float, float, float]]:
     """Per step: (the scheduler's lr, the step size used, the cap c·s before the step)."""
-    model = _model()
+    model = tanh_module()
     opt = make(model.parameters(), lr=lr)
     sched = torch.optim.lr_scheduler.LambdaLR(opt, factor)
     out = []

@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import torch
-from torch import Tensor
+from torch import Tensor, nn
 
 DTYPE = torch.float64
 
@@ -32,3 +32,9 @@ def mse_loss(ws: list[Tensor], batch: tuple[Tensor, Tensor]) -> Tensor:
     w1, b1, w2, b2 = ws
     x, y = batch
     return ((torch.tanh(x @ w1.T + b1) @ w2.T + b2 - y) ** 2).mean()
+
+
+def tanh_module() -> nn.Module:
+    """An 8-32-1 tanh ``nn.Module`` in float64, initialized by torch's defaults under seed 0."""
+    torch.manual_seed(0)
+    return nn.Sequential(nn.Linear(8, 32), nn.Tanh(), nn.Linear(32, 1)).double()
