@@ -10,7 +10,7 @@ import torch
 from torch import Tensor
 
 from . import distributed, trail
-from .bases import BaseRule, has_native_probe, has_trail_kernels
+from .bases import BaseRule, has_native_probe, has_trail_kernels, has_trail_probe
 from .plan import Batch, Plan
 
 __all__ = ["Measurement", "complete_across_ranks", "grads_finite", "measure"]
@@ -71,9 +71,14 @@ def measure(rule: BaseRule, group: dict[str, Any], ts: dict[str, Tensor], plan: 
                 if probes
                 else torch.zeros_like(ts["hyper_value"])
             )
-    trail_dot = _trail_dot(rule, group, plan, batch, device) if plan.horizon > 0 and plan.levels else None
-    gmax = None
-    if plan.blowup_guard or plan.clip_check:
+    trail_dot = gmax = None
+    if plan.horizon > 0 and plan.levels:
+        probed = _trail_probe(rule, group, plan, batch) if plan.blowup_guard or plan.clip_check else None
+        if probed is not None:
+            trail_dot, gmax = probed[0].reshape(1).to(device), probed[1].to(device)
+        else:
+            trail_dot = _trail_dot(rule, group, plan, batch, device)
+    if (plan.blowup_guard or plan.clip_check) and gmax is None:
         gmax = fast[1].to(device) if fast is not None else _grad_max(batch.grads)
     norm_sq = _grad_norm_sq(batch.grads, device) if plan.clip_check else None
     # Every dot product contains a gradient, and inf * 0 = nan: a non-finite gradient shows in
@@ -92,6 +97,16 @@ def _native_probe(rule: BaseRule, group: dict[str, Any], plan: Plan, batch: Batc
     if plan.startup_test or plan.searching or (plan.horizon > 0 and plan.levels) or not has_native_probe(rule):
         return None
     return rule.native_probe(group, batch.params, batch.grads, batch.states)
+
+
+def _trail_probe(rule: BaseRule, group: dict[str, Any], plan: Plan, batch: Batch) -> tuple[Tensor, Tensor] | None:
+    """The base's one-pass ``(<g_s, E>, max |g_s|)`` against the trail (one unit, every trail
+    present, not sharded), else None."""
+    if plan.unit_index is not None or plan.sharded or not has_trail_probe(rule):
+        return None
+    if not batch.params or not trail.has_trail(batch.states):
+        return None
+    return rule.trail_probe(group, batch.params, batch.grads, [st[trail.TRAIL_KEY] for st in batch.states])
 
 
 def _trail_dot(rule: BaseRule, group: dict[str, Any], plan: Plan, batch: Batch, device: torch.device) -> Tensor:

@@ -8,7 +8,16 @@ fused kernels, where valid), ``compiled`` (the opt-in compiled Adam + trail kern
 
 from .adam import AdamRule
 from .grad import loss_grad
-from .protocol import BaseRule, CompiledTrail, NativeProbe, Probe, has_native_probe, has_trail_kernels
+from .protocol import (
+    BaseRule,
+    CompiledTrail,
+    NativeProbe,
+    Probe,
+    TrailProbe,
+    has_native_probe,
+    has_trail_kernels,
+    has_trail_probe,
+)
 from .sgd import SGDRule
 
 __all__ = [
@@ -18,7 +27,9 @@ __all__ = [
     "NativeProbe",
     "Probe",
     "SGDRule",
+    "TrailProbe",
     "has_native_probe",
     "has_trail_kernels",
+    "has_trail_probe",
     "loss_grad",
 ]

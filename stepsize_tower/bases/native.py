@@ -3,9 +3,11 @@ r"""Native CPU kernels (C++, built on first use) of the tower's step: the defaul
 :func:`trail_dot` and :func:`adam_trail_update` are the step of ``TowerAdam`` / ``TowerAdamW``
 on CPU (``native=None``, the default, or True: :meth:`stepsize_tower.bases.adam.AdamRule.trail_dot`
 / ``update_with_trail``), with the same math as :mod:`stepsize_tower.bases.compiled`;
-:func:`dot_and_max` is the read pass of ``TowerSGD`` with momentum
-(:meth:`stepsize_tower.bases.sgd.SGDRule.native_probe`). Per parameter tensor (float32 or float64;
-moments and trail in the same dtype): weights :math:`w`, gradient :math:`g`, moments
+:func:`dot_and_max` is the read pass of ``TowerSGD`` (against the momentum buffer at horizon
+0, :meth:`stepsize_tower.bases.sgd.SGDRule.native_probe`; against the trail otherwise,
+``trail_probe``) and :func:`sgd_trail_update` its update with the trail (``update_with_trail``,
+math in its docstring). Adam, per parameter tensor (float32 or float64; moments and trail in
+the same dtype): weights :math:`w`, gradient :math:`g`, moments
 :math:`m, v`, trail :math:`E`, trail weight :math:`\omega`, step count :math:`t` (already
 incremented), step size :math:`a`, weight decay :math:`\lambda`:
 
@@ -65,6 +67,7 @@ __all__ = [
     "available",
     "dot_and_max",
     "reset",
+    "sgd_trail_update",
     "trail_dot",
 ]
 
@@ -278,3 +281,38 @@ def adam_trail_update(
         float(trail_weight), bool(with_dot),
     )  # fmt: skip
     return torch.tensor(h, dtype=torch.float64) if with_dot else None
+
+
+def sgd_trail_update(
+    params: Sequence[Tensor],
+    grads: Sequence[Tensor],
+    buffers: Sequence[Tensor],
+    trails: Sequence[Tensor],
+    kept: Sequence[Tensor],
+    a: Tensor | float,
+    momentum: float,
+    dampening: float,
+    weight_decay: float,
+    nesterov: bool,
+    maximize: bool,
+    trail_weight: float,
+) -> None:
+    r"""One ``torch.optim.SGD`` step with step size ``a`` and the trail update, in one pass, in place.
+
+    .. math::
+        \tilde g = \pm g + \lambda w, \qquad b' = \mu b + (1 - \tau)\tilde g, \qquad
+        d = b' \;(\text{Nesterov: } \tilde g + \mu b';\ \mu = 0: \tilde g), \qquad
+        w' = w - a d, \qquad E' = (1-\omega) E + \omega\, a d
+
+    ``buffers`` (the momentum buffers, all present: the first step, which creates them, takes
+    the default path) are used when ``momentum != 0``; ``kept`` receives :math:`\tilde g` for
+    plain SGD and Nesterov (their ``prev_grad``), else is unused. Same tensor requirements as
+    :func:`trail_dot`.
+    """
+    params = list(params)
+    if not params:
+        return
+    _kernels().sgd_update(
+        params, list(grads), list(buffers), list(trails), list(kept), float(a), float(momentum),
+        float(dampening), float(weight_decay), bool(nesterov), bool(maximize), float(trail_weight),
+    )  # fmt: skip

@@ -5,6 +5,8 @@
 //               (TowerSGD with momentum: E is the momentum buffer).
 // adam_update:  w, m, v and the trail E of every tensor updated in one pass; optionally (the
 //               one-step-lagged variant) the same pass also returns h of the old trails.
+// sgd_update:   w, the momentum buffer, the trail E (and the kept gradient of plain SGD and
+//               Nesterov) of every tensor updated in one pass.
 //
 // Work is split into fixed blocks of BLOCK elements per tensor, independent of the thread
 // count; at::parallel_for hands out whole blocks. The dot product keeps one float64 partial
@@ -314,6 +316,90 @@ double update_all(std::vector<at::Tensor>& ws, const std::vector<at::Tensor>& gs
   return total;
 }
 
+// ----------------------------------------------------------------------------- SGD update
+
+struct SgdHyper {
+  double momentum, dampening, weight_decay, trail_weight;
+  bool maximize;
+};
+
+// The constants of the SGD update as vectors, built once per block (see Consts).
+template <typename T>
+struct SgdConsts {
+  using V = at::vec::Vectorized<T>;
+  V a, mu, one_minus_damp, l2, keep_e, omega;
+  bool maximize, l2_on;
+
+  SgdConsts(double step, const SgdHyper& h)
+      : a(static_cast<T>(step)),
+        mu(static_cast<T>(h.momentum)),
+        one_minus_damp(static_cast<T>(1.0 - h.dampening)),
+        l2(static_cast<T>(h.weight_decay)),
+        keep_e(static_cast<T>(1) - static_cast<T>(h.trail_weight)),
+        omega(static_cast<T>(h.trail_weight)),
+        maximize(h.maximize),
+        l2_on(h.weight_decay != 0.0) {}
+};
+
+// One vector of one tensor, in torch.optim.SGD's order of operations: g~ = +-g + l2 w;
+// heavy ball b = mu b + (1 - damp) g~, d = b (Nesterov d = g~ + mu b); plain d = g~;
+// w = w - a d, E = (1 - omega) E + omega (a d); KEEP stores g~ (the last gradient).
+template <typename T, bool FULL, bool MOMENTUM, bool NESTEROV, bool KEEP>
+inline void sgd_vec(T* wp, const T* gp, T* bp, T* ep, T* kp, int64_t count, const SgdConsts<T>& k) {
+  using V = at::vec::Vectorized<T>;
+  const auto load = [count](const T* ptr) { return FULL ? V::loadu(ptr) : V::loadu(ptr, count); };
+  const auto store = [count](const V& x, T* ptr) { FULL ? x.store(ptr) : x.store(ptr, count); };
+  V w = load(wp), g = load(gp), e = load(ep);
+  if (k.maximize) g = g.neg();
+  if (k.l2_on) g = g + k.l2 * w;
+  V d = g;
+  if constexpr (MOMENTUM) {
+    const V b = load(bp) * k.mu + k.one_minus_damp * g;
+    store(b, bp);
+    d = NESTEROV ? g + k.mu * b : b;
+  }
+  if constexpr (KEEP) store(g, kp);
+  const V step = k.a * d;
+  store(w - step, wp);
+  store(e * k.keep_e + k.omega * step, ep);
+}
+
+template <typename T, bool MOMENTUM, bool NESTEROV, bool KEEP>
+void sgd_all(std::vector<at::Tensor>& ws, const std::vector<at::Tensor>& gs, std::vector<at::Tensor>& bs,
+             std::vector<at::Tensor>& es, std::vector<at::Tensor>& ks, double a, const SgdHyper& h) {
+  constexpr int64_t W = at::vec::Vectorized<T>::size();
+  for_blocks(blocks_of(ws), [&](int64_t, const Block& blk) {
+    const int64_t i = blk.tensor;
+    T* w = ws[i].data_ptr<T>();
+    const T* g = gs[i].data_ptr<T>();
+    T* b = MOMENTUM ? bs[i].data_ptr<T>() : nullptr;
+    T* e = es[i].data_ptr<T>();
+    T* kept = KEEP ? ks[i].data_ptr<T>() : nullptr;
+    const auto at = [](T* ptr, int64_t j) { return ptr == nullptr ? nullptr : ptr + j; };
+    const SgdConsts<T> k(a, h);
+    int64_t j = blk.begin;
+    for (; j + W <= blk.end; j += W) {
+      sgd_vec<T, true, MOMENTUM, NESTEROV, KEEP>(w + j, g + j, at(b, j), e + j, at(kept, j), W, k);
+    }
+    if (j < blk.end) {
+      sgd_vec<T, false, MOMENTUM, NESTEROV, KEEP>(w + j, g + j, at(b, j), e + j, at(kept, j), blk.end - j, k);
+    }
+  });
+}
+
+template <typename T>
+void sgd_dispatch(std::vector<at::Tensor>& ws, const std::vector<at::Tensor>& gs, std::vector<at::Tensor>& bs,
+                  std::vector<at::Tensor>& es, std::vector<at::Tensor>& ks, double a, const SgdHyper& h,
+                  bool nesterov) {
+  if (h.momentum == 0.0) {
+    sgd_all<T, false, false, true>(ws, gs, bs, es, ks, a, h);
+  } else if (nesterov) {
+    sgd_all<T, true, true, true>(ws, gs, bs, es, ks, a, h);
+  } else {
+    sgd_all<T, true, false, false>(ws, gs, bs, es, ks, a, h);
+  }
+}
+
 // ----------------------------------------------------------------------------- dot and largest entry
 
 // One block: sum <g~, e> (exact products, float64, 8 lanes in a fixed order) and max |g| of the
@@ -465,6 +551,20 @@ double adam_update(std::vector<at::Tensor> params, const std::vector<at::Tensor>
   return update_all<double>(params, grads, exp_avgs, exp_avg_sqs, trails, steps, a, h, with_dot);
 }
 
+void sgd_update(std::vector<at::Tensor> params, const std::vector<at::Tensor>& grads,
+                std::vector<at::Tensor> buffers, std::vector<at::Tensor> trails, std::vector<at::Tensor> kept,
+                double a, double momentum, double dampening, double weight_decay, bool nesterov, bool maximize,
+                double trail_weight) {
+  const bool heavy = momentum != 0.0, keep = momentum == 0.0 || nesterov;
+  check_lists(params, {grads, trails, heavy ? buffers : grads, keep ? kept : grads});
+  const SgdHyper h{momentum, dampening, weight_decay, trail_weight, maximize};
+  if (params[0].scalar_type() == at::kFloat) {
+    sgd_dispatch<float>(params, grads, buffers, trails, kept, a, h, nesterov);
+  } else {
+    sgd_dispatch<double>(params, grads, buffers, trails, kept, a, h, nesterov);
+  }
+}
+
 bool all_finite(const std::vector<at::Tensor>& grads) {
   check_lists(grads, {grads});
   return grads[0].scalar_type() == at::kFloat ? all_finite_of<float>(grads) : all_finite_of<double>(grads);
@@ -477,6 +577,8 @@ PYBIND11_MODULE(TORCH_EXTENSION_NAME, mod) {
   mod.def("dot_and_max", &dot_and_max, "(sum_i <g~_i, E_i> in float64, max |g|) in one read pass");
   mod.def("compatible", &compatible, "whether the kernels take these tensor lists");
   mod.def("all_finite", &all_finite, "whether every entry of the tensors is finite (one read pass)");
+  mod.def("sgd_update", &sgd_update,
+          "SGD step (heavy ball, Nesterov or plain) with the trail update and the kept gradient, one pass");
   mod.def("adam_update", &adam_update,
           "Adam/AdamW step with the trail update, one pass (increment: advance the step counts first); "
           "with_dot: also sum_i <g~_i, E_i> (old trails)");

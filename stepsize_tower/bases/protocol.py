@@ -7,7 +7,16 @@ from typing import Any, NamedTuple, Protocol, TypeGuard, runtime_checkable
 
 from torch import Tensor
 
-__all__ = ["BaseRule", "CompiledTrail", "NativeProbe", "Probe", "has_native_probe", "has_trail_kernels"]
+__all__ = [
+    "BaseRule",
+    "CompiledTrail",
+    "NativeProbe",
+    "Probe",
+    "TrailProbe",
+    "has_native_probe",
+    "has_trail_kernels",
+    "has_trail_probe",
+]
 
 
 class Probe(NamedTuple):
@@ -135,6 +144,17 @@ class NativeProbe(Protocol):
         ...
 
 
+@runtime_checkable
+class TrailProbe(Protocol):
+    """A base whose trail dot product and largest gradient entry come from one native pass."""
+
+    def trail_probe(
+        self, group: dict[str, Any], params: list[Tensor], grads: list[Tensor], trails: list[Tensor]
+    ) -> tuple[Tensor, Tensor] | None:
+        """``(Σ <g_s, E>, max |g_s|)`` over the whole group, or None where it does not apply."""
+        ...
+
+
 #: (class, protocol) -> whether the class implements it, decided once: a runtime protocol
 #: check scans the protocol's attributes each time (about 15 µs, several times per step).
 _IMPLEMENTS: dict[tuple[type, type], bool] = {}
@@ -155,3 +175,8 @@ def has_trail_kernels(rule: object) -> TypeGuard[CompiledTrail]:
 def has_native_probe(rule: object) -> TypeGuard[NativeProbe]:
     """``isinstance(rule, NativeProbe)``, decided once per class."""
     return _implements(rule, NativeProbe)
+
+
+def has_trail_probe(rule: object) -> TypeGuard[TrailProbe]:
+    """``isinstance(rule, TrailProbe)``, decided once per class."""
+    return _implements(rule, TrailProbe)

@@ -99,6 +99,62 @@ class SGDRule:
             grads, bufs, params=params, weight_decay=group["weight_decay"], maximize=group["maximize"]
         )
 
+    def trail_dot(
+        self, group: dict[str, Any], params: list[Tensor], grads: list[Tensor], trails: list[Tensor]
+    ) -> Tensor | None:
+        """``Σ <g̃_s, E>`` over the group in one read pass of the native kernel, or None where it does not apply."""
+        if not _native_trail(group, params, grads, trails):
+            return None
+        return native.trail_dot(
+            grads,
+            trails,
+            params=params,
+            weight_decay=group["weight_decay"],
+            decoupled=False,
+            maximize=group["maximize"],
+        )
+
+    def trail_probe(
+        self, group: dict[str, Any], params: list[Tensor], grads: list[Tensor], trails: list[Tensor]
+    ) -> tuple[Tensor, Tensor] | None:
+        """``(Σ <g̃_s, E>, max |g_s|)``: the trail hypergradient and the blow-up guard's measure in one
+        read pass of the native kernel, or None where it does not apply."""
+        if not _native_trail(group, params, grads, trails):
+            return None
+        return native.dot_and_max(
+            grads, trails, params=params, weight_decay=group["weight_decay"], maximize=group["maximize"]
+        )
+
+    def update_with_trail(
+        self,
+        group: dict[str, Any],
+        params: list[Tensor],
+        grads: list[Tensor],
+        states: list[dict[str, Any]],
+        trails: list[Tensor],
+        a0: Tensor,
+        weight: float,
+    ) -> bool:
+        """The SGD step with step size ``a0`` and ``E <- (1 - weight) E + weight a0 d`` in one native pass.
+
+        Returns False, changing nothing, where it does not apply (the first step, which creates
+        the momentum buffers or the kept gradients; learned momentum; tensors outside the
+        kernel's scope): the engine then takes the default update plus the trail's passes.
+        """
+        momentum, nesterov = group["momentum"], group["nesterov"]
+        bufs = _present(states, "momentum_buffer") if momentum != 0 else []
+        kept = _present(states, "prev_grad") if momentum == 0 or nesterov else []
+        if bufs is None or kept is None:
+            return False
+        others = [lst for lst in (bufs, kept) if lst]
+        if not _native_trail(group, params, grads, trails, *others):
+            return False
+        native.sgd_trail_update(
+            params, grads, bufs, trails, kept, a0, momentum, group["dampening"], group["weight_decay"],
+            nesterov, group["maximize"], weight,
+        )  # fmt: skip
+        return True
+
     def update(
         self,
         group: dict[str, Any],
@@ -166,6 +222,22 @@ class SGDRule:
         else:
             d = state["momentum_buffer"]
         p.add_(d * (a_prev - a_new).to(d.dtype))
+
+
+def _present(states: list[dict[str, Any]], key: str) -> list[Tensor] | None:
+    """Every tensor's ``state[key]``, or None when one of them has none yet."""
+    found = [st.get(key) for st in states]
+    return None if any(t is None for t in found) else [t for t in found if t is not None]
+
+
+def _native_trail(group: dict[str, Any], params: list[Tensor], grads: list[Tensor], *others: list[Tensor]) -> bool:
+    """Whether the native kernels take this group's trail passes: not switched off, not compiling,
+    momentum not learned, dense float32/float64 CPU tensors (:func:`native.applies`)."""
+    if group.get("native") is False or group.get("learn_momentum") or not params:
+        return False
+    if torch.compiler.is_compiling():
+        return False
+    return native.applies(params, grads, *others)
 
 
 def _momentum_direction(
