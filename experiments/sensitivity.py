@@ -14,6 +14,7 @@ Usage::
     .venv/bin/python experiments/sensitivity.py                       # 1 seed, all tasks
     .venv/bin/python experiments/sensitivity.py --seeds 0 1 2
     .venv/bin/python experiments/sensitivity.py --variant 'd2={"depth": 2}' --tasks mlp_digits
+    .venv/bin/python experiments/sensitivity.py --bases sgdm           # SGD with momentum 0.9
     .venv/bin/python experiments/sensitivity.py --from-points experiments/out/sensitivity/points.jsonl
 
 Output (under ``--out``): ``points.jsonl`` (one line per point, written as points
@@ -40,12 +41,15 @@ from pathlib import Path
 from typing import Any
 
 import torch
-from sensitivity_report import BASES, FIXED, GAP, RATIO, TOWER, fill_initial_test_loss, plot, report
+from sensitivity_report import BASES, DEFAULT_BASES, FIXED, GAP, RATIO, TOWER, fill_initial_test_loss, plot, report
 
 from stepsize_tower import TowerAdam, TowerSGD
 from stepsize_tower.tasks import TASKS, get_task, task_names, train
 
 LRS: tuple[float, ...] = tuple(10.0**k for k in range(-7, 2))
+
+#: The ``sgdm`` base: heavy-ball momentum, for the fixed rate and the tower alike.
+SGDM_MOMENTUM = 0.9
 
 #: Rough relative cost of one run per task, to start the slow ones first.
 _COST = {"char_gru": 10.0, "cnn_digits": 3.0, "mlp_digits": 1.0}
@@ -73,10 +77,11 @@ def make_optimizer(
     base: str, method: str, tower_kwargs: dict[str, Any], params: Any, lr: float
 ) -> torch.optim.Optimizer:
     """The fixed-rate ``torch.optim`` optimizer, or a tower with ``lr`` and ``tower_kwargs``."""
+    momentum = {"momentum": SGDM_MOMENTUM} if base == "sgdm" else {}
     if method == FIXED:
-        return torch.optim.Adam(params, lr=lr) if base == "adam" else torch.optim.SGD(params, lr=lr)
+        return torch.optim.Adam(params, lr=lr) if base == "adam" else torch.optim.SGD(params, lr=lr, **momentum)
     tower = TowerAdam if base == "adam" else TowerSGD
-    return tower(params, lr=lr, **tower_kwargs)
+    return tower(params, lr=lr, **momentum, **tower_kwargs)
 
 
 def _finite_or_none(x: float) -> float | None:
@@ -205,7 +210,13 @@ def main(argv: Sequence[str] | None = None) -> None:
     )
     parser.add_argument("--seeds", type=int, nargs="+", default=[0], help="seeds (default: 0)")
     parser.add_argument("--tasks", nargs="+", default=task_names(), choices=list(TASKS), help="tasks (default: all)")
-    parser.add_argument("--bases", nargs="+", default=list(BASES), choices=BASES, help="bases (default: adam sgd)")
+    parser.add_argument(
+        "--bases",
+        nargs="+",
+        default=list(DEFAULT_BASES),
+        choices=BASES,
+        help="bases (default: adam sgd; sgdm = SGD with momentum 0.9)",
+    )
     parser.add_argument("--steps", type=int, default=None, help="steps per run (default: each task's own, 300)")
     parser.add_argument("--workers", type=int, default=2, help="worker processes (default: 2)")
     parser.add_argument("--out", type=Path, default=Path("experiments/out/sensitivity"), help="output folder")

@@ -29,7 +29,9 @@ import torch
 from stepsize_tower.runner.tolerance import GoodRule
 from stepsize_tower.tasks import get_task, task_names
 
-BASES = ("adam", "sgd")
+#: ``sgdm`` is SGD with momentum 0.9 (heavy ball), what most SGD training scripts type.
+BASES = ("adam", "sgd", "sgdm")
+DEFAULT_BASES = ("adam", "sgd")
 FIXED = "fixed"
 TOWER = "tower"
 GAP = GoodRule("gap", gap=0.05)

@@ -107,10 +107,10 @@ def _check_same_base(
 def missing_horizon(group: Mapping[str, Any]) -> float:
     """The horizon a group saved without one gets: the class's measured default for that group.
 
-    SGD groups carry ``momentum`` (default 0 with momentum, :data:`DEFAULT_HORIZON` without);
-    Adam groups carry ``betas`` (:data:`DEFAULT_ADAM_HORIZON`).
+    SGD groups get :data:`DEFAULT_HORIZON`; Adam groups, which carry ``betas``,
+    :data:`DEFAULT_ADAM_HORIZON`.
     """
-    return default_horizon(float(group.get("momentum", 0.0)), adam_like="betas" in group)
+    return default_horizon(adam_like="betas" in group)
 
 
 def normalize_steps(state: Mapping[Any, Any], groups: Sequence[Mapping[str, Any]]) -> None:

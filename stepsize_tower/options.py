@@ -29,6 +29,7 @@ __all__ = [
     "DEFAULT_FIRST_STEP_LIMIT",
     "DEFAULT_HORIZON",
     "DEFAULT_HYPER_LEVEL",
+    "DEFAULT_SCHEDULE_HOLD_BACK",
     "GRANULARITIES",
     "LEVEL_KEYS",
     "Option",
@@ -51,7 +52,13 @@ DEFAULT_DEPTH = 1
 #: back, the published rule). A one-step hypergradient under minibatch noise prefers step
 #: sizes that are too small (short-horizon bias); a trail of about 1 / (1 - γ) updates lets
 #: oscillations cancel and measures whether the net recent movement still goes downhill.
-#: Used for SGD without momentum; Adam/AdamW use :data:`DEFAULT_ADAM_HORIZON`.
+#: Used for SGD (with or without momentum); Adam/AdamW use :data:`DEFAULT_ADAM_HORIZON`.
+#: With momentum 0.9 it replaced the one-step rule (horizon 0) in session 12, measured
+#: (experiments/README.md, "SGD with momentum takes the trail too"): on the noisy quadratic
+#: model with heavy ball the one-step rule ended 4.6x the best fixed rate's closed-form
+#: expected loss (typed 1000x too large, noise 1), the trail 0.62-0.80x in all four cases;
+#: sensitivity benchmark with momentum 0.9 (8 tasks, 3 seeds, 216 points) 186 -> 192 good
+#: under the gap, 141 -> 173 under the ratio, 183 -> 188 held-out.
 DEFAULT_HORIZON = 0.99
 
 #: The horizon of Adam-like bases: a trail of about 1 000 updates. At 0.99 the trail's
@@ -79,6 +86,12 @@ DEFAULT_ADAM_HORIZON = 0.999
 #: 3 seeds) keeps every point (90 of 90 the same); 0.25 lost 3 there (the MLP on digits, one seed).
 DEFAULT_FIRST_STEP_LIMIT = 0.1
 
+#: While a scheduler holds ``lr`` below its peak, the share of each lowering move level 1 makes
+#: (:mod:`stepsize_tower.schedule_anneal`). Measured (field benchmark, 2 seeds, 5 % warm-up +
+#: cosine, typed 1e-4, 1e-2, 1): 0.1 ends the byte transformer below tuned AdamW + cosine from
+#: every typed lr; 1 (no hold-back) does not.
+DEFAULT_SCHEDULE_HOLD_BACK = 0.1
+
 #: The level that learns momentum or betas when asked to (logit space, fixed step size).
 DEFAULT_HYPER_LEVEL = Level(kind="adam", lr=0.01)
 
@@ -91,17 +104,10 @@ _TOP_LR = {1: 0.05, 2: 0.01}
 GRANULARITIES = ("group", "tensor")
 
 
-def default_horizon(momentum: float = 0.0, *, adam_like: bool = False) -> float:
+def default_horizon(*, adam_like: bool = False) -> float:
     """The measured default horizon: :data:`DEFAULT_ADAM_HORIZON` for Adam-like bases, else
-    :data:`DEFAULT_HORIZON`, or 0 for SGD with momentum.
-
-    A momentum buffer is itself a trail of about ``1 / (1 - μ)`` gradients; stacking a second
-    trail on it made the step size shrink (heavy ball, μ = 0.9, on a quadratic and on the
-    digits MLP), while the one-step rule beat the best fixed rate there (see experiments/README.md).
-    """
-    if adam_like:
-        return DEFAULT_ADAM_HORIZON
-    return 0.0 if momentum > 0 else DEFAULT_HORIZON
+    :data:`DEFAULT_HORIZON` (SGD, with or without momentum)."""
+    return DEFAULT_ADAM_HORIZON if adam_like else DEFAULT_HORIZON
 
 
 def default_levels(depth: int) -> tuple[Level, ...]:
@@ -232,6 +238,15 @@ def _check_first_step_limit(limit: Any) -> str | None:
     )
 
 
+def _check_schedule_hold_back(share: Any) -> str | None:
+    if _is_number(share) and math.isfinite(share) and 0 < share <= 1:
+        return None
+    return (
+        f"Invalid schedule_hold_back: {share!r}; expected a number in (0, 1]: the share of each lowering "
+        "move level 1 makes while a scheduler anneals lr (1 turns the hold-back off)"
+    )
+
+
 def _check_growth_search(max_move: Any) -> str | None:
     if max_move is None or (_is_number(max_move) and math.isfinite(max_move) and 0 < max_move <= MAX_LOG_CHANGE):
         return None
@@ -332,9 +347,9 @@ TOWER_OPTIONS: tuple[Option, ...] = (
         "decay γ of the trail of recent updates that the step size's hypergradient is taken against; 0 is "
         "the one-step-back hypergradient",
         _check_horizon,
-        legacy=lambda group: default_horizon(float(group.get("momentum", 0.0)), adam_like="betas" in group),
+        legacy=lambda group: default_horizon(adam_like="betas" in group),
         default_doc="measured, :func:`stepsize_tower.options.default_horizon`: 0.999 for Adam/AdamW, 0.99 for "
-        "SGD, 0 for SGD with momentum",
+        "SGD (with or without momentum)",
     ),
     Option(
         "growth_search",
@@ -347,6 +362,16 @@ TOWER_OPTIONS: tuple[Option, ...] = (
         _check_growth_search,
         legacy=None,
         default_doc="None, off",
+    ),
+    Option(
+        "schedule_hold_back",
+        "while a scheduler holds ``lr`` below its largest value so far (it is annealing), level 1 makes "
+        "only this share of each move that lowers the learned factor, so the schedule owns the decay; "
+        "raising moves, warm-ups and runs at a constant ``lr`` are unchanged; 1 turns it off "
+        "(:mod:`stepsize_tower.schedule_anneal`)",
+        _check_schedule_hold_back,
+        legacy=DEFAULT_SCHEDULE_HOLD_BACK,
+        default_doc="the measured :data:`stepsize_tower.options.DEFAULT_SCHEDULE_HOLD_BACK` (0.1)",
     ),
     Option("maximize", "maximize the objective instead of minimizing it", _check_bool("maximize"), legacy=False),
     Option(

@@ -9,7 +9,14 @@ from torch import Tensor
 
 from .bases.sgd import SGDRule
 from .levels import Level
-from .options import DEFAULT_HYPER_LEVEL, SGD_OPTIONS, TOWER_OPTIONS, default_horizon, resolve_levels
+from .options import (
+    DEFAULT_HYPER_LEVEL,
+    DEFAULT_SCHEDULE_HOLD_BACK,
+    SGD_OPTIONS,
+    TOWER_OPTIONS,
+    default_horizon,
+    resolve_levels,
+)
 from .tower import TowerOptimizer
 
 __all__ = ["TowerSGD"]
@@ -67,6 +74,7 @@ class TowerSGD(TowerOptimizer):
         sharded: bool | None = None,
         fused: bool | None = None,
         growth_search: float | None = None,
+        schedule_hold_back: float = DEFAULT_SCHEDULE_HOLD_BACK,
         native: bool | None = None,
     ) -> None:
         defaults = {
@@ -79,12 +87,13 @@ class TowerSGD(TowerOptimizer):
             "levels": resolve_levels(depth, levels),
             "granularity": granularity,
             "retreat": retreat,
-            "horizon": default_horizon(momentum) if horizon is None else horizon,
+            "horizon": default_horizon() if horizon is None else horizon,
             "learn_momentum": learn_momentum,
             "hyper_level": hyper_level or DEFAULT_HYPER_LEVEL,
             "sharded": sharded,
             "fused": fused,
             "growth_search": growth_search,
+            "schedule_hold_back": schedule_hold_back,
             "native": native,
         }
         super().__init__(params, defaults)

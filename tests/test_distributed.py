@@ -79,7 +79,7 @@ def _groups(model: nn.Module) -> list[dict[str, Any]]:
 _OPTIMIZERS: dict[str, tuple[type, dict[str, Any]]] = {
     # Adam: normalized, default horizon 0.999 (the trail of updates after the retreat window).
     "adam": (TowerAdam, {"lr": 1e-2}),
-    # SGD with momentum: horizon 0, the growth guard on (the largest gradient entry is reduced too).
+    # SGD with momentum: the trail (horizon 0.99), the growth guard on (the largest gradient entry is reduced too).
     "sgd": (TowerSGD, {"lr": 1e-2, "momentum": 0.9}),
     # Learned betas: the tangent dot products are reduced as well.
     "adam_betas": (TowerAdam, {"lr": 1e-2, "learn_betas": True}),

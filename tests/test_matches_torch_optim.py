@@ -204,8 +204,14 @@ def test_fused_sgd_update_matches_reference_path(
 ) -> None:
     # reference: the fused=False path, itself checked against torch.optim.SGD above
     # (common practice: a fast path is tested equal to the readable one in float64)
+    # native=False: torch's kernels on both sides (the native ones: test_native_sgd.py). horizon 0: the two
+    # kernels round a dampened buffer differently in float64, and a trail (every SGD's default) feeds those
+    # differences back into the step size (measured up to 8e-10 relative with an SGD-like level and
+    # maximize); the trail's own passes are the same code on both sides.
     def make(fused: bool):
-        return lambda p: TowerSGD(p, lr=0.05, retreat=retreat, fused=fused, **base_kwargs, **tower)
+        return lambda p: TowerSGD(
+            p, lr=0.05, retreat=retreat, fused=fused, native=False, horizon=0.0, **base_kwargs, **tower
+        )
 
     kernel, calls = torch._fused_sgd_, []
 
@@ -220,8 +226,9 @@ def test_fused_sgd_update_matches_reference_path(
     ref, opt_ref = _train(make(False), split, steps=30)
     assert n_fused_calls > 0 and len(calls) == n_fused_calls, "fused=True must use the kernel, fused=False not"
     _assert_moved(ref)
+    tol = 1e-12
     for w_fused, w_ref in zip(ours, ref, strict=True):  # relative: maximize grows the weights
-        torch.testing.assert_close(w_fused, w_ref, rtol=1e-12, atol=1e-12)
+        torch.testing.assert_close(w_fused, w_ref, rtol=tol, atol=tol)
     for sizes_fused, sizes_ref in zip(opt_fused.step_size_tensors(), opt_ref.step_size_tensors(), strict=True):
-        torch.testing.assert_close(sizes_fused, sizes_ref, rtol=1e-12, atol=0.0)
+        torch.testing.assert_close(sizes_fused, sizes_ref, rtol=tol, atol=0.0)
     assert opt_fused.retreats() == opt_ref.retreats()

@@ -69,6 +69,7 @@ def _train(lr: float, steps: int = 60, **kw: Any) -> tuple[list[Tensor], list[li
     x, y = torch.randn(256, 10, generator=gen), torch.randn(256, 1, generator=gen)
     torch.manual_seed(1)
     model = nn.Sequential(nn.Linear(10, 32), nn.Tanh(), nn.Linear(32, 1))
+    kw = {"horizon": 0.0, **kw}  # the one-step hypergradient against the momentum buffer
     opt = TowerSGD(model.parameters(), lr=lr, momentum=0.9, **kw)
     for s in range(steps):
         idx = (torch.arange(32) + 8 * s) % 256

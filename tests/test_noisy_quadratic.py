@@ -147,3 +147,64 @@ def test_tower_adam_ends_near_the_best_fixed_adam_on_the_noisy_quadratic(typed: 
     mean_loss = float(np.mean([loss for loss, _ in runs]))
     assert mean_loss <= 1.5 * loss_star, f"mean loss {mean_loss:.3g} vs best fixed Adam {loss_star:.3g}"
     assert min(a for _, a in runs) >= lr_star / 10, f"step size collapsed below lr*/10 = {lr_star / 10:.3g}"
+
+
+# ---------------------------------------------------------------- SGD with momentum (heavy ball)
+# The same model has an exact second-moment recursion for heavy ball (Zhang et al. 2019 treat
+# momentum in the noisy quadratic model): per coordinate the state s = (w, b) moves by
+# b' = μ b + h w + ξ, w' = w - a b', i.e. s' = A s + c ξ with A = [[1 - a h, -a μ], [h, μ]],
+# c = (-a, 1), so E[s s^T]' = A E[s s^T] A^T + noise · h · c c^T, from w_0 = 1, b_0 = 0.
+
+MOMENTUM = 0.9
+
+
+def expected_loss_heavy_ball(a: float, noise: float, steps: int = STEPS) -> float:
+    """``E[L_T]`` for fixed-step heavy ball (torch.optim.SGD's momentum) from ``w_0 = 1`` (exact recursion)."""
+    h, mu = CURVATURES, MOMENTUM
+    ww, wb, bb = np.ones_like(h), np.zeros_like(h), np.zeros_like(h)
+    a11, a12, a21, a22, c1 = 1.0 - a * h, -a * mu, h, mu, -a
+    q = noise * h
+    for _ in range(steps):
+        ww, wb, bb = (
+            a11 * a11 * ww + 2 * a11 * a12 * wb + a12 * a12 * bb + q * c1 * c1,
+            a11 * a21 * ww + (a11 * a22 + a12 * a21) * wb + a12 * a22 * bb + q * c1,
+            a21 * a21 * ww + 2 * a21 * a22 * wb + a22 * a22 * bb + q,
+        )
+        if not np.all(np.isfinite(ww)) or ww.max() > 1e30:  # unstable: no finite expected loss
+            return float("inf")
+    return float(0.5 * np.sum(h * ww))
+
+
+@functools.lru_cache(maxsize=2)
+def best_fixed_heavy_ball(noise: float) -> tuple[float, float]:
+    """``(a*, E[L_T](a*))`` of fixed-step heavy ball for the budget, by bounded scalar search."""
+    return minimize_step(lambda a: expected_loss_heavy_ball(a, noise), (1e-5, 0.4), 1e-6)
+
+
+def test_heavy_ball_recursion_matches_simulated_torch_sgd() -> None:
+    # The reference itself, checked by simulation (common practice): 200 runs of torch.optim.SGD's momentum rule.
+    noise, a = 0.1, 0.01
+    gen = torch.Generator().manual_seed(0)
+    h = torch.tensor(CURVATURES)
+    w = torch.nn.Parameter(torch.ones(200, DIM, dtype=torch.float64))
+    opt = torch.optim.SGD([w], lr=a, momentum=MOMENTUM)
+    for _ in range(STEPS):
+        w.grad = h * w.detach() + torch.randn(w.shape, generator=gen, dtype=torch.float64) * (noise * h).sqrt()
+        opt.step()
+    simulated = float((0.5 * (h * w.detach() ** 2).sum(dim=1)).mean())
+    assert simulated == pytest.approx(expected_loss_heavy_ball(a, noise), rel=0.05)
+
+
+@pytest.mark.parametrize("noise", [pytest.param(0.01, marks=pytest.mark.slow), 1.0])
+@pytest.mark.parametrize("typed", [1e-3, 1e3], ids=["1000x_too_small", "1000x_too_large"])
+def test_momentum_tower_ends_near_the_best_fixed_heavy_ball(noise: float, typed: float) -> None:
+    a_star, loss_star = best_fixed_heavy_ball(noise)
+    runs = [run_noisy(functools.partial(TowerSGD, momentum=MOMENTUM), a_star * typed, noise, s) for s in range(SEEDS)]
+    mean_loss = float(np.mean([loss for loss, _ in runs]))
+    # Measured (4 seeds, horizon 0.99): 0.62-0.80 x the optimum's expected loss; the one-step rule
+    # (horizon 0, the default before session 12) ended 4.6x (noise 1, typed 1000x too large: its step
+    # size settled at 7-9 a*) and 1.58x (typed 1000x too small).
+    assert mean_loss <= 1.5 * loss_star, f"mean loss {mean_loss:.3g} vs best fixed heavy ball {loss_star:.3g}"
+    # Measured: final step sizes 0.09-0.56 a* (annealing under noise, which the loss bound rewards);
+    # a collapse (the loss bound's other failure) would sit orders of magnitude lower.
+    assert min(a for _, a in runs) >= a_star / 20, f"step size collapsed: {min(a for _, a in runs):.3g} vs {a_star:.3g}"

@@ -188,12 +188,10 @@ def _drop_group_key(ckpt: Any, key: str) -> Any:
     ("make", "expected"),
     [
         (lambda ps: TowerAdam(ps, lr=1e-2), [DEFAULT_ADAM_HORIZON]),
-        # Per group: SGD without momentum 0.99, with momentum 0 (defaults.default_horizon). The
-        # run typed the second group's horizon: a group's momentum override alone keeps the
-        # constructor's horizon (computed from the constructor's momentum).
+        # Per group: SGD 0.99 (options.default_horizon), with or without momentum.
         (
-            lambda ps: TowerSGD([{"params": ps[:2]}, {"params": ps[2:], "momentum": 0.9, "horizon": 0.0}], lr=0.05),
-            [DEFAULT_HORIZON, 0.0],
+            lambda ps: TowerSGD([{"params": ps[:2]}, {"params": ps[2:], "momentum": 0.9}], lr=0.05),
+            [DEFAULT_HORIZON, DEFAULT_HORIZON],
         ),
     ],
     ids=["adam", "sgd_two_groups"],

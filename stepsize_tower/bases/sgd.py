@@ -232,8 +232,9 @@ def _present(states: list[dict[str, Any]], key: str) -> list[Tensor] | None:
 
 def _native_trail(group: dict[str, Any], params: list[Tensor], grads: list[Tensor], *others: list[Tensor]) -> bool:
     """Whether the native kernels take this group's trail passes: not switched off, not compiling,
-    momentum not learned, dense float32/float64 CPU tensors (:func:`native.applies`)."""
-    if group.get("native") is False or group.get("learn_momentum") or not params:
+    momentum not learned, one step size for the group, dense float32/float64 CPU tensors
+    (:func:`native.applies`)."""
+    if group.get("native") is False or group.get("learn_momentum") or group["granularity"] != "group" or not params:
         return False
     if torch.compiler.is_compiling():
         return False
