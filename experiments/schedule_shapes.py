@@ -26,7 +26,7 @@ from typing import Any
 
 import torch
 
-from stepsize_tower import TowerAdam, TowerSGD, schedule_anneal
+from stepsize_tower import TowerAdam, TowerSGD
 from stepsize_tower.tasks import get_task
 from stepsize_tower.tasks.train import train
 
@@ -59,13 +59,11 @@ def run_one(task_name: str, schedule: str, seed: int, lr: float, method: str) ->
     task = get_task(task_name).build(seed)
     steps = task.default_steps
     opt = _optimizer(schedule, method != "baseline", task.model.parameters(), lr)
+    if method == "tower_off":
+        for group in opt.param_groups:
+            group["schedule_hold_back"] = 1.0
     sched = _scheduler(schedule, opt, steps)
-    saved = schedule_anneal.SCHEDULE_SHRINK
-    schedule_anneal.SCHEDULE_SHRINK = 1.0 if method == "tower_off" else saved
-    try:
-        res = train(task, opt, steps, scheduler=sched)
-    finally:
-        schedule_anneal.SCHEDULE_SHRINK = saved
+    res = train(task, opt, steps, scheduler=sched)
     held = task.test_loss(task.model) if not res.diverged else math.inf
     return {"init": res.initial_loss, "train": res.final_loss, "held": held, "diverged": res.diverged}
 

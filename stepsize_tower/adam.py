@@ -14,6 +14,7 @@ from .options import (
     DEFAULT_ADAM_HORIZON,
     DEFAULT_FIRST_STEP_LIMIT,
     DEFAULT_HYPER_LEVEL,
+    DEFAULT_SCHEDULE_HOLD_BACK,
     TOWER_OPTIONS,
     resolve_levels,
 )
@@ -85,6 +86,7 @@ class TowerAdam(TowerOptimizer):
         native: bool | str | None = None,
         first_step_limit: float | None = DEFAULT_FIRST_STEP_LIMIT,
         growth_search: float | None = None,
+        schedule_hold_back: float = DEFAULT_SCHEDULE_HOLD_BACK,
     ) -> None:
         if weight_decay is None:
             weight_decay = self._default_weight_decay
@@ -106,6 +108,7 @@ class TowerAdam(TowerOptimizer):
             "native": native,
             "first_step_limit": first_step_limit,
             "growth_search": growth_search,
+            "schedule_hold_back": schedule_hold_back,
         }
         super().__init__(params, defaults)
 

@@ -4,11 +4,12 @@ The tower treats ``group["lr"]`` as an outer factor on its learned step size, so
 their warm-up + cosine schedule and drops the lr search. Under gradient noise the greedy
 hypergradient asks for smaller steps even at a good rate (short-horizon bias: it anneals);
 with a schedule that anneals too, the two decays compound. So on every step whose ``lr`` is
-below its largest value of the taken steps (the schedule is annealing), level 1 makes only
-:data:`SCHEDULE_SHRINK` of each move that lowers :math:`u_0`:
+below its largest value of the taken steps (the schedule is annealing), level 1 makes only a
+share :math:`\kappa` of each move that lowers :math:`u_0` (the group's ``schedule_hold_back``,
+default :data:`stepsize_tower.options.DEFAULT_SCHEDULE_HOLD_BACK`; 1 turns it off):
 
 .. math::
-    u_0 \leftarrow u_0 - \begin{cases} \text{SCHEDULE\_SHRINK} \cdot c & c > 0 \\ c & c \le 0 \end{cases}
+    u_0 \leftarrow u_0 - \begin{cases} \kappa \cdot c & c > 0 \\ c & c \le 0 \end{cases}
     \qquad \text{while } \texttt{lr}_s < \max_{j < s} \texttt{lr}_j
 
 (:attr:`stepsize_tower.levels.Level.shrink` on top of the level's own). Raising moves, runs
@@ -31,17 +32,12 @@ from torch import Tensor
 from .host_clock import PEAK_LR_KEY, Clock
 from .levels import Level
 
-__all__ = ["PEAK_LR_KEY", "SCHEDULE_SHRINK", "keep_peak", "levels_while_annealing"]
-
-#: The share of each lowering move level 1 makes while a schedule anneals ``lr``. Measured
-#: (field benchmark, 2 seeds, 5 % warm-up + cosine, typed 1e-4, 1e-2, 1): 0.1 ends the
-#: byte transformer below tuned AdamW + cosine from every typed lr; 1 (no hold-back) does not.
-SCHEDULE_SHRINK = 0.1
+__all__ = ["PEAK_LR_KEY", "keep_peak", "levels_while_annealing"]
 
 
-def levels_while_annealing(levels: tuple[Level, ...]) -> tuple[Level, ...]:
-    """``levels`` with level 1's ``shrink`` multiplied by :data:`SCHEDULE_SHRINK`."""
-    return _held_back(levels, SCHEDULE_SHRINK)
+def levels_while_annealing(levels: tuple[Level, ...], share: float) -> tuple[Level, ...]:
+    """``levels`` with level 1's ``shrink`` multiplied by ``share`` (the group's ``schedule_hold_back``)."""
+    return levels if share == 1 else _held_back(levels, share)
 
 
 @functools.lru_cache(maxsize=64)

@@ -23,8 +23,8 @@ import torch
 from torch import nn
 
 import stepsize_tower.engine as engine
-import stepsize_tower.schedule_anneal as schedule_anneal
 from stepsize_tower import Level, TowerAdam, TowerSGD
+from stepsize_tower.options import DEFAULT_SCHEDULE_HOLD_BACK
 from stepsize_tower.schedule_anneal import PEAK_LR_KEY
 from tests.test_noisy_quadratic import CURVATURES, SEEDS, minimize_step, run_noisy
 from tests.test_noisy_quadratic import STEPS as NQM_STEPS
@@ -76,10 +76,6 @@ def _assert_same(a: list[torch.Tensor], b: list[torch.Tensor]) -> None:
         assert torch.equal(x, y)
 
 
-def _off(monkeypatch: pytest.MonkeyPatch) -> None:
-    monkeypatch.setattr(schedule_anneal, "SCHEDULE_SHRINK", 1.0)
-
-
 def _adam(**kw: Any) -> Callable[..., torch.optim.Optimizer]:
     return functools.partial(TowerAdam, lr=3e-3, **kw)
 
@@ -89,28 +85,48 @@ def _decaying_from_one(step: int) -> float:
 
 
 @pytest.mark.parametrize("masked", [False, True], ids=["read_path", "masked_path"])
-def test_while_the_schedule_anneals_level_one_makes_a_tenth_of_each_lowering_move(
-    masked: bool, monkeypatch: pytest.MonkeyPatch
+@pytest.mark.parametrize("share", [None, 0.5], ids=["default", "share_0.5"])
+def test_while_the_schedule_anneals_level_one_makes_its_share_of_each_lowering_move(
+    masked: bool, share: float | None, monkeypatch: pytest.MonkeyPatch
 ) -> None:
     # the schedule anneals from step 1 on (step 0 is the first step: the level has no move yet)
     monkeypatch.setattr(engine, "MASK_ON_CPU", masked)
-    held = _outcome(*_train(_adam(), _decaying_from_one, range(STEPS))[:2])
-    _off(monkeypatch)
-    plain = _outcome(*_train(_adam(), _decaying_from_one, range(STEPS))[:2])
-    shrink = Level(kind="adam", lr=0.05, shrink=0.1)
-    _assert_same(held, _outcome(*_train(_adam(levels=[shrink]), _decaying_from_one, range(STEPS))[:2]))
+    typed = {} if share is None else {"schedule_hold_back": share}
+    held = _outcome(*_train(_adam(**typed), _decaying_from_one, range(STEPS))[:2])
+    plain = _outcome(*_train(_adam(schedule_hold_back=1.0), _decaying_from_one, range(STEPS))[:2])
+    shrink = Level(kind="adam", lr=0.05, shrink=DEFAULT_SCHEDULE_HOLD_BACK if share is None else share)
+    same_rule = _adam(levels=[shrink], schedule_hold_back=1.0)
+    _assert_same(held, _outcome(*_train(same_rule, _decaying_from_one, range(STEPS))[:2]))
     assert held[-1][0, 0] > plain[-1][0, 0], "the case must make lowering moves: held back, the factor ends higher"
 
 
+def _group_typed_off(params: Any) -> torch.optim.Optimizer:
+    return TowerAdam([{"params": list(params), "schedule_hold_back": 1.0}], lr=3e-3)
+
+
+def test_the_hold_back_is_set_per_group() -> None:
+    # reference: the group's own value decides (torch's param-group contract): a group typed 1 runs as the
+    # constructor's 1 does, and not as the default
+    off = _outcome(*_train(_adam(schedule_hold_back=1.0), _decaying_from_one, range(STEPS))[:2])
+    model, opt, _ = _train(_group_typed_off, _decaying_from_one, range(STEPS))
+    assert opt.param_groups[0]["schedule_hold_back"] == 1.0
+    _assert_same(_outcome(model, opt), off)
+    default = _outcome(*_train(_adam(), _decaying_from_one, range(STEPS))[:2])
+    assert not torch.equal(default[-1], off[-1])
+
+
+@pytest.mark.parametrize("bad", [0.0, -0.1, 1.5, float("nan"), "0.1"])
+def test_a_bad_hold_back_says_what_is_expected(bad: Any) -> None:
+    with pytest.raises(ValueError, match=r"schedule_hold_back.*\(0, 1\]"):
+        TowerAdam([torch.zeros(2, requires_grad=True)], schedule_hold_back=bad)
+
+
 @pytest.mark.parametrize("factor", [lambda s: 1.0, _warmup], ids=["constant", "warmup"])
-def test_runs_whose_lr_never_falls_are_unchanged(
-    factor: Callable[[int], float], monkeypatch: pytest.MonkeyPatch
-) -> None:
+def test_runs_whose_lr_never_falls_are_unchanged(factor: Callable[[int], float]) -> None:
     model, opt, _ = _train(_adam(), factor, range(STEPS))
     assert PEAK_LR_KEY not in opt.param_groups[0]["tower"], "nothing is stored before the lr falls"
     ours = _outcome(model, opt)
-    _off(monkeypatch)
-    _assert_same(ours, _outcome(*_train(_adam(), factor, range(STEPS))[:2]))
+    _assert_same(ours, _outcome(*_train(_adam(schedule_hold_back=1.0), factor, range(STEPS))[:2]))
 
 
 @pytest.mark.parametrize("make", [_adam(), functools.partial(TowerSGD, lr=0.05)], ids=["adam", "sgd"])
