@@ -257,8 +257,7 @@ def learn(
         ts["prev_lr"] = plan.lr0 if keep is None or "prev_lr" not in ts else torch.where(keep, plan.lr0, ts["prev_lr"])
     u_before = ts["log_step"][:, 0].clone() if plan.levels else None
     if plan.levels:
-        annealing = plan.annealing and group["schedule_hold_back"] != 1
-        levels = levels_while_annealing(plan.levels, group["schedule_hold_back"]) if annealing else plan.levels
+        levels = levels_while_annealing(plan.levels, group["schedule_hold_back"]) if plan.annealing else plan.levels
         a0 = tower_step(ts, levels, update_dot, group["lr"], search_dot, plan.search_max_move, keep)
     else:
         a0 = plan.lr0.expand(plan.units)

@@ -69,8 +69,9 @@ def _train(lr: float, steps: int = 60, **kw: Any) -> tuple[list[Tensor], list[li
     x, y = torch.randn(256, 10, generator=gen), torch.randn(256, 1, generator=gen)
     torch.manual_seed(1)
     model = nn.Sequential(nn.Linear(10, 32), nn.Tanh(), nn.Linear(32, 1))
-    kw = {"horizon": 0.0, **kw}  # the one-step hypergradient against the momentum buffer
-    opt = TowerSGD(model.parameters(), lr=lr, momentum=0.9, **kw)
+    # default: heavy ball with the one-step hypergradient against its buffer (the trail tests pass horizon)
+    kw = {"horizon": 0.0, "momentum": 0.9, **kw}
+    opt = TowerSGD(model.parameters(), lr=lr, **kw)
     for s in range(steps):
         idx = (torch.arange(32) + 8 * s) % 256
         opt.zero_grad()
@@ -80,15 +81,23 @@ def _train(lr: float, steps: int = 60, **kw: Any) -> tuple[list[Tensor], list[li
 
 
 class _Spy:
-    def __init__(self, monkeypatch: pytest.MonkeyPatch) -> None:
-        self.calls = 0
-        real = native.dot_and_max
+    """Counts the calls of the named native kernels (``calls``: all of them; ``counts``: by name)."""
 
-        def counted(*args: Any, **kwargs: Any) -> tuple[Tensor, Tensor]:
-            self.calls += 1
+    def __init__(self, monkeypatch: pytest.MonkeyPatch, *names: str) -> None:
+        self.counts = dict.fromkeys(names or ("dot_and_max",), 0)
+        for name in self.counts:
+            monkeypatch.setattr(native, name, self._counted(name, getattr(native, name)))
+
+    def _counted(self, name: str, real: Any) -> Any:
+        def counted(*args: Any, **kwargs: Any) -> Any:
+            self.counts[name] += 1
             return real(*args, **kwargs)
 
-        monkeypatch.setattr(native, "dot_and_max", counted)
+        return counted
+
+    @property
+    def calls(self) -> int:
+        return sum(self.counts.values())
 
 
 @pytest.mark.parametrize(("lr", "kw"), [(1e-3, {}), (1e-3, {"weight_decay": 1e-2, "dampening": 0.1}), (30.0, {})])
@@ -196,38 +205,12 @@ def test_float32_update_equals_torch_optim_sgd(built: None, hyper: dict[str, Any
             torch.testing.assert_close(b, ref.state[p]["momentum_buffer"], rtol=2.0**-21, atol=1e-7)
 
 
-class _TrailSpy:
-    """Counts the calls of the trail kernels (update and read pass)."""
-
-    def __init__(self, monkeypatch: pytest.MonkeyPatch) -> None:
-        self.updates = self.probes = 0
-        update, probe = native.sgd_trail_update, native.dot_and_max
-
-        def counted_update(*args: Any, **kwargs: Any) -> None:
-            self.updates += 1
-            update(*args, **kwargs)
-
-        def counted_probe(*args: Any, **kwargs: Any) -> tuple[Tensor, Tensor]:
-            self.probes += 1
-            return probe(*args, **kwargs)
-
-        monkeypatch.setattr(native, "sgd_trail_update", counted_update)
-        monkeypatch.setattr(native, "dot_and_max", counted_probe)
+TRAIL_KERNELS = ("sgd_trail_update", "dot_and_max")
 
 
-def _train_trail(**kw: Any) -> tuple[list[Tensor], list[list[float]], int]:
-    """:func:`_train` with a trail (``horizon=0.99``); ``momentum`` from ``kw``."""
-    gen = torch.Generator().manual_seed(0)
-    x, y = torch.randn(256, 10, generator=gen), torch.randn(256, 1, generator=gen)
-    torch.manual_seed(1)
-    model = nn.Sequential(nn.Linear(10, 32), nn.Tanh(), nn.Linear(32, 1))
-    opt = TowerSGD(model.parameters(), horizon=0.99, **kw)
-    for s in range(60):
-        idx = (torch.arange(32) + 8 * s) % 256
-        opt.zero_grad()
-        nn.functional.mse_loss(model(x[idx]), y[idx]).backward()
-        opt.step()
-    return [p.detach().clone() for p in model.parameters()], opt.step_sizes(), opt.retreats()
+def _train_trail(lr: float, **kw: Any) -> tuple[list[Tensor], list[list[float]], int]:
+    """:func:`_train` with a trail (``horizon=0.99``); ``momentum`` from ``kw`` (default 0, plain SGD)."""
+    return _train(lr, **{"horizon": 0.99, "momentum": 0.0, **kw})
 
 
 @pytest.mark.parametrize(
@@ -246,9 +229,9 @@ def test_sgd_with_a_trail_takes_the_kernels_and_matches_the_reference_path(
     # Reference: the reference path (native=False: torch's SGD update, then the trail's two passes). The trail
     # differs by rounding (the kernel adds the intended update a·d), and the hypergradient feeds it back.
     ref_w, ref_a, ref_back = _train_trail(native=False, **kw)
-    spy = _TrailSpy(monkeypatch)
+    spy = _Spy(monkeypatch, *TRAIL_KERNELS)
     got_w, got_a, got_back = _train_trail(**kw)
-    assert spy.updates >= 40 and spy.probes >= 40  # every settled step
+    assert min(spy.counts.values()) >= 40  # every settled step takes both
     assert got_back == ref_back and (kw["lr"] < 1 or got_back > 0)
     assert got_a[0][0] == pytest.approx(ref_a[0][0], rel=1e-4)
     for a, b in zip(ref_w, got_w, strict=True):
@@ -260,6 +243,6 @@ def test_trail_kernels_stay_off_where_they_do_not_apply(
     built: None, monkeypatch: pytest.MonkeyPatch, kw: dict[str, Any]
 ) -> None:
     # Reference: the spy itself (common practice): switched off, or with a learned momentum, nothing calls them.
-    spy = _TrailSpy(monkeypatch)
-    _train_trail(lr=1e-3, momentum=0.9, **kw)
-    assert spy.updates == 0 and spy.probes == 0
+    spy = _Spy(monkeypatch, *TRAIL_KERNELS)
+    _train_trail(1e-3, momentum=0.9, **kw)
+    assert spy.calls == 0

@@ -88,12 +88,10 @@ class SGDRule:
     ) -> tuple[Tensor, Tensor] | None:
         """``(Σ <g̃_s, buf>, max |g_s|)`` over the group in one read pass of the native CPU kernel
         (heavy ball, every buffer present), or None where it does not apply."""
-        if group["momentum"] == 0 or group["nesterov"] or group.get("learn_momentum") or not params:
+        if group["momentum"] == 0 or group["nesterov"]:
             return None
-        if group.get("native") is False or torch.compiler.is_compiling():
-            return None
-        bufs = [st["momentum_buffer"] for st in states if st.get("momentum_buffer") is not None]
-        if len(bufs) != len(params) or not native.applies(params, grads, bufs):
+        bufs = _present(states, "momentum_buffer")
+        if bufs is None or not _native_applies(group, params, grads, bufs):
             return None
         return native.dot_and_max(
             grads, bufs, params=params, weight_decay=group["weight_decay"], maximize=group["maximize"]
@@ -103,7 +101,7 @@ class SGDRule:
         self, group: dict[str, Any], params: list[Tensor], grads: list[Tensor], trails: list[Tensor]
     ) -> Tensor | None:
         """``Σ <g̃_s, E>`` over the group in one read pass of the native kernel, or None where it does not apply."""
-        if not _native_trail(group, params, grads, trails):
+        if not _native_applies(group, params, grads, trails):
             return None
         return native.trail_dot(
             grads,
@@ -119,7 +117,7 @@ class SGDRule:
     ) -> tuple[Tensor, Tensor] | None:
         """``(Σ <g̃_s, E>, max |g_s|)``: the trail hypergradient and the blow-up guard's measure in one
         read pass of the native kernel, or None where it does not apply."""
-        if not _native_trail(group, params, grads, trails):
+        if not _native_applies(group, params, grads, trails):
             return None
         return native.dot_and_max(
             grads, trails, params=params, weight_decay=group["weight_decay"], maximize=group["maximize"]
@@ -147,7 +145,7 @@ class SGDRule:
         if bufs is None or kept is None:
             return False
         others = [lst for lst in (bufs, kept) if lst]
-        if not _native_trail(group, params, grads, trails, *others):
+        if not _native_applies(group, params, grads, trails, *others):
             return False
         native.sgd_trail_update(
             params, grads, bufs, trails, kept, a0, momentum, group["dampening"], group["weight_decay"],
@@ -230,8 +228,8 @@ def _present(states: list[dict[str, Any]], key: str) -> list[Tensor] | None:
     return None if any(t is None for t in found) else [t for t in found if t is not None]
 
 
-def _native_trail(group: dict[str, Any], params: list[Tensor], grads: list[Tensor], *others: list[Tensor]) -> bool:
-    """Whether the native kernels take this group's trail passes: not switched off, not compiling,
+def _native_applies(group: dict[str, Any], params: list[Tensor], grads: list[Tensor], *others: list[Tensor]) -> bool:
+    """Whether the native kernels take this group's passes: not switched off, not compiling,
     momentum not learned, one step size for the group, dense float32/float64 CPU tensors
     (:func:`native.applies`)."""
     if group.get("native") is False or group.get("learn_momentum") or group["granularity"] != "group" or not params:
