@@ -27,6 +27,7 @@ from typing import Any
 
 import torch
 
+from .horizon import Horizon
 from .options import default_horizon
 
 __all__ = ["adopt_foreign_groups", "missing_horizon", "normalize_steps", "param_entries"]
@@ -104,7 +105,7 @@ def _check_same_base(
         )
 
 
-def missing_horizon(group: Mapping[str, Any]) -> float:
+def missing_horizon(group: Mapping[str, Any]) -> Horizon:
     """The horizon a group saved without one gets: the class's measured default for that group.
 
     SGD groups get :data:`DEFAULT_HORIZON`; Adam groups, which carry ``betas``,

@@ -8,6 +8,7 @@ from typing import Any
 from torch import Tensor
 
 from .bases.adam import AdamRule
+from .horizon import Horizon
 from .levels import Level
 from .options import (
     ADAM_OPTIONS,
@@ -76,7 +77,7 @@ class TowerAdam(TowerOptimizer):
         levels: Sequence[Level | str | dict[str, Any]] | None = None,
         granularity: str = "group",
         retreat: bool = True,
-        horizon: float | None = None,
+        horizon: Horizon | Sequence[float] | None = None,
         maximize: bool = False,
         fused: bool | None = None,
         learn_betas: bool = False,

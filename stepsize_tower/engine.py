@@ -79,7 +79,7 @@ def step_group(rule: BaseRule, group: dict[str, Any], state: Any, owner: str) ->
         plain_step(rule, group, state, ts, batch, sharded)
         return
     clock = _clock(group, ts, created)
-    plan = make_plan(group, ts, rule, batch, sharded, clock)
+    plan = make_plan(group, ts, rule, batch, sharded, clock, masks=_masks_on(device))
     if plan.annealing:
         keep_peak(ts, clock)
     m = measure(rule, group, ts, plan, batch)
@@ -224,7 +224,7 @@ def _clip_signal(m: Measurement) -> ClipSignal | None:
 def _update_dot(plan: Plan, m: Measurement) -> Tensor:
     """``<g_s, Δ>`` against the trail (``D = E / (1 - γ)``) or the last update ``Δ = a_{0,s-1} d_{0,s-1}``."""
     if m.trail_dot is not None:
-        return m.trail_dot / (1.0 - plan.horizon)
+        return m.trail_dot / plan.trail_weight
     return m.prev_dot * plan.a_prev
 
 
@@ -319,8 +319,8 @@ def apply(
         rule.update(group, learned, params, grads, states, step_sizes, skip)
         return
     trails = trail.ensure(params, states)
-    weight = 1.0 - horizon
-    if a0.shape[0] == 1 and has_trail_kernels(rule) and skip is None:
+    weight = plan.trail_weight
+    if a0.shape[0] == 1 and has_trail_kernels(rule) and skip is None and not isinstance(weight, Tensor):
         if rule.update_with_trail(group, params, grads, states, trails, a0[0], weight):
             return
 

@@ -21,6 +21,8 @@ from typing import Any
 
 from torch import Tensor
 
+from . import horizon as horizon_rules
+from .horizon import Horizon
 from .levels import LEVEL_KINDS, MAX_LOG_CHANGE, Level
 
 __all__ = [
@@ -59,7 +61,7 @@ DEFAULT_DEPTH = 1
 #: expected loss (typed 1000x too large, noise 1), the trail 0.62-0.80x in all four cases;
 #: sensitivity benchmark with momentum 0.9 (8 tasks, 3 seeds, 216 points) 186 -> 192 good
 #: under the gap, 141 -> 173 under the ratio, 183 -> 188 held-out.
-DEFAULT_HORIZON = 0.99
+DEFAULT_HORIZON: Horizon = 0.99
 
 #: The horizon of Adam-like bases: a trail of about 1 000 updates. At 0.99 the trail's
 #: hypergradient asked to shrink on 99-100 % of steps past step 400 even at the best constant
@@ -104,7 +106,7 @@ _TOP_LR = {1: 0.05, 2: 0.01}
 GRANULARITIES = ("group", "tensor")
 
 
-def default_horizon(*, adam_like: bool = False) -> float:
+def default_horizon(*, adam_like: bool = False) -> Horizon:
     """The measured default horizon: :data:`DEFAULT_ADAM_HORIZON` for Adam-like bases, else
     :data:`DEFAULT_HORIZON` (SGD, with or without momentum)."""
     return DEFAULT_ADAM_HORIZON if adam_like else DEFAULT_HORIZON
@@ -189,12 +191,6 @@ def _check_lr(lr: Any) -> str | None:
     value = lr.item() if isinstance(lr, Tensor) else lr
     if not (isinstance(value, (int, float)) and math.isfinite(value) and value >= 0):
         return f"Invalid learning rate: {lr!r}; expected a finite number >= 0"
-    return None
-
-
-def _check_horizon(horizon: Any) -> str | None:
-    if not (isinstance(horizon, (int, float)) and 0.0 <= horizon < 1.0):
-        return f"Invalid horizon: {horizon!r}; expected 0 <= horizon < 1 (0 = one step back)"
     return None
 
 
@@ -345,11 +341,12 @@ TOWER_OPTIONS: tuple[Option, ...] = (
     Option(
         "horizon",
         "decay γ of the trail of recent updates that the step size's hypergradient is taken against; 0 is "
-        "the one-step-back hypergradient",
-        _check_horizon,
+        "the one-step-back hypergradient. A pair ``(γ_0, γ_1)`` lets the trail grow with the run: it spans "
+        "as many updates as steps taken, from ``1/(1-γ_0)`` up to ``1/(1-γ_1)`` (:mod:`stepsize_tower.horizon`)",
+        horizon_rules.check,
         legacy=lambda group: default_horizon(adam_like="betas" in group),
-        default_doc="measured, :func:`stepsize_tower.options.default_horizon`: 0.999 for Adam/AdamW, 0.99 for "
-        "SGD (with or without momentum)",
+        default_doc="measured, :func:`stepsize_tower.options.default_horizon`: 0.999 for Adam/AdamW, "
+        "0.99 for SGD (with or without momentum)",
     ),
     Option(
         "growth_search",

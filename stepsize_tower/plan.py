@@ -10,6 +10,7 @@ from typing import Any
 import torch
 from torch import Tensor
 
+from . import horizon as horizon_rules
 from .bases import BaseRule
 from .group_state import levels_of
 from .host_clock import Clock
@@ -42,7 +43,11 @@ class Plan:
     #: ``a_{0,s-1}`` per unit, and ``group["lr"]`` as a [1] float64 tensor.
     a_prev: Tensor
     lr0: Tensor
+    #: The largest decay of the trail (0: none; :func:`stepsize_tower.horizon.longest`).
     horizon: float
+    #: This step's trail weight ω_s = 1 - γ_s: a float on the host's read path, a 0-dim float64
+    #: tensor on masked steps of a growing horizon (the count is not read there).
+    trail_weight: float | Tensor
     sharded: bool
     learns_hyperparams: bool
     steps_taken: int
@@ -102,9 +107,16 @@ def unit_index(unit_of: list[int], ts: dict[str, Tensor]) -> Tensor:
 
 
 def make_plan(
-    group: dict[str, Any], ts: dict[str, Tensor], rule: BaseRule, batch: Batch, sharded: bool, clock: Clock
+    group: dict[str, Any],
+    ts: dict[str, Tensor],
+    rule: BaseRule,
+    batch: Batch,
+    sharded: bool,
+    clock: Clock,
+    masks: bool = False,
 ) -> Plan:
-    """The step's flags, from the host's ``clock`` of the group (no read)."""
+    """The step's flags, from the host's ``clock`` of the group (no read). ``masks``: settled
+    steps of this group take the masked path (the host's count is then only a lower bound)."""
     levels = levels_of(group)
     units = ts["log_step"].shape[0]
     per_tensor = group["granularity"] == "tensor"
@@ -112,7 +124,7 @@ def make_plan(
     lr0 = lr_tensor(group, ts)
     search_max_move = group.get("growth_search") if levels and "search" in ts else None
     steps_taken, searching = clock.steps_taken, clock.searching and search_max_move is not None
-    horizon = float(group["horizon"])
+    horizon = horizon_rules.longest(group["horizon"])
     lr = host_lr(group)
     # The start-up test runs in the first steps and for as long as the growth search goes on.
     startup_test = bool(group["retreat"]) and bool(levels) and (steps_taken < RETREAT_WINDOW or searching)
@@ -124,6 +136,7 @@ def make_plan(
         a_prev=ts["prev_step"][:, 0] if levels else ts.get("prev_lr", lr0).expand(units),
         lr0=lr0,
         horizon=horizon,
+        trail_weight=_trail_weight(group["horizon"], ts, clock, masks),
         sharded=sharded,
         learns_hyperparams="hyper_value" in ts,
         steps_taken=steps_taken,
@@ -137,6 +150,14 @@ def make_plan(
         rising=bool(levels) and lr is not None and lr > clock.peak_lr,
         annealing=bool(levels) and lr is not None and lr < clock.peak_lr,
     )
+
+
+def _trail_weight(horizon: Any, ts: dict[str, Tensor], clock: Clock, masks: bool) -> float | Tensor:
+    """ω_s from the host's count where it is exact, else (masked settled steps, where the host
+    stops following the count) from the step-count tensor, with no read."""
+    if horizon_rules.is_growing(horizon) and clock.settled and masks:
+        return horizon_rules.weight_tensor(horizon, ts["step"])
+    return horizon_rules.weight_at(horizon, clock.steps_taken)
 
 
 def host_lr(group: dict[str, Any]) -> float | None:

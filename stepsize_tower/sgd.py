@@ -8,6 +8,7 @@ from typing import Any
 from torch import Tensor
 
 from .bases.sgd import SGDRule
+from .horizon import Horizon
 from .levels import Level
 from .options import (
     DEFAULT_HYPER_LEVEL,
@@ -38,6 +39,10 @@ class TowerSGD(TowerOptimizer):
         &w_s = w_{s-1} - a_{0,s}\, d_{0,s}, \qquad a_{0,s} = \mathrm{lr} \cdot e^{u_{0,s}}
         \end{aligned}
 
+    With ``horizon=(γ_0, γ_1)`` the trail grows with the run (at step :math:`s`,
+    :math:`\gamma_s = 1 - 1/\mathrm{clip}(s, 1/(1-\gamma_0), 1/(1-\gamma_1))`, the sum kept
+    as a moving average; :mod:`stepsize_tower.horizon`); a float ``horizon`` keeps γ fixed.
+
     With ``depth=0`` this is exactly :class:`torch.optim.SGD`; it loads its checkpoints
     too (momentum buffers carry over, the tower starts at the checkpoint's ``lr``).
 
@@ -67,7 +72,7 @@ class TowerSGD(TowerOptimizer):
         levels: Sequence[Level | str | dict[str, Any]] | None = None,
         granularity: str = "group",
         retreat: bool = True,
-        horizon: float | None = None,
+        horizon: Horizon | Sequence[float] | None = None,
         maximize: bool = False,
         learn_momentum: bool = False,
         hyper_level: Level | None = None,

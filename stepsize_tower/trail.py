@@ -7,6 +7,8 @@ as its moving average ``E = (1 - γ) D``, one parameter-sized buffer per tensor 
 
     E <- (1 - ω) E + ω Δ,   ω = 1 - γ,   Δ = w_before - w_after
 
+(with a growing horizon ω changes with the steps taken: :mod:`stepsize_tower.horizon`).
+
 A retreat clears it (it held the unstable steps). Once the learned factor ``exp(u_0)`` has
 fallen far below its peak, each further fall also scales ``E`` down by the same factor
 (:func:`forget_larger_steps`), so steps taken at rates many times the current one stop
@@ -82,7 +84,11 @@ def dots(
 
 
 def fold_update(
-    trails: list[Tensor], params: list[Tensor], weight: float, move: Callable[[], None], skip: Tensor | None = None
+    trails: list[Tensor],
+    params: list[Tensor],
+    weight: float | Tensor,
+    move: Callable[[], None],
+    skip: Tensor | None = None,
 ) -> None:
     """Run ``move`` and fold the update it makes into ``E <- (1 - weight) E + weight (w_before - w_after)``.
 
@@ -90,19 +96,26 @@ def fold_update(
     ``skip`` (a 0-dim bool tensor: ``move`` changes nothing where it holds) the weight is the
     tensor ``weight * (1 - skip)``, so a skipped step leaves ``E`` exactly as it was, with no
     host read; for float32/float64 tensors the taken step is bitwise the same as with the
-    float weight. 16-bit trails are restored with ``where`` instead.
+    float weight. 16-bit trails are restored with ``where`` instead. ``weight`` may itself be a
+    0-dim tensor (a growing horizon's weight, not read).
     """
-    if skip is None:
+    if skip is None and not isinstance(weight, Tensor):
         torch._foreach_lerp_(trails, params, weight)
         move()
         torch._foreach_add_(trails, params, alpha=-weight)
     elif all(t.dtype in _EXACT_DTYPES for t in trails):
-        kept = {dtype: (~skip).to(dtype) * weight for dtype in {t.dtype for t in trails}}  # one per dtype
+        taken = skip if skip is not None else torch.zeros((), dtype=torch.bool, device=trails[0].device)
+        kept = {dtype: ((~taken).to(dtype) * weight).to(dtype) for dtype in {t.dtype for t in trails}}  # one per dtype
         torch._foreach_lerp_(trails, params, [kept[t.dtype] for t in trails])
         move()
         dropped = {dtype: -k for dtype, k in kept.items()}
         torch._foreach_addcmul_(trails, params, [dropped[t.dtype] for t in trails])
     else:
+        if isinstance(weight, Tensor):  # 16-bit trails: the weight as a float (one read, rare)
+            weight = float(weight)
+        if skip is None:
+            fold_update(trails, params, weight, move)
+            return
         before = [t.clone() for t in trails]
         fold_update(trails, params, weight, move)
         for t, old in zip(trails, before, strict=True):
