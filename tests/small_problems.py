@@ -1,4 +1,4 @@
-"""Two small deterministic problems shared by the safeguard and growth-search tests."""
+"""Small deterministic problems shared by the safeguard, growth-search and horizon tests."""
 
 from __future__ import annotations
 
@@ -36,3 +36,16 @@ def network_task(seed: int = 0) -> tuple[torch.nn.Module, Callable[[], torch.Ten
         return torch.nn.functional.mse_loss(model(x), y)
 
     return model, loss
+
+
+def tanh_regression(batches: int = 16) -> Callable[[torch.Tensor, int], torch.Tensor]:
+    """``loss(w, s)``: minibatch ``s`` of a tanh regression on 8 float64 weights (a different
+    batch of 12 rows at each step ``s < batches``)."""
+    gen = torch.Generator().manual_seed(5)
+    target = torch.randn(8, dtype=torch.float64, generator=gen)
+    xs = [torch.randn(12, 8, dtype=torch.float64, generator=gen) for _ in range(batches)]
+
+    def loss(w: torch.Tensor, s: int) -> torch.Tensor:
+        return ((torch.tanh(xs[s] @ w) - torch.tanh(xs[s] @ target)) ** 2).mean()
+
+    return loss

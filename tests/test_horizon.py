@@ -9,19 +9,9 @@ from __future__ import annotations
 
 import pytest
 import torch
+from small_problems import tanh_regression
 
 from stepsize_tower import TowerAdam, TowerAdamW, TowerSGD
-
-
-def _problem():
-    gen = torch.Generator().manual_seed(5)
-    target = torch.randn(8, dtype=torch.float64, generator=gen)
-    xs = [torch.randn(12, 8, dtype=torch.float64, generator=gen) for _ in range(12)]
-
-    def loss(w: torch.Tensor, s: int) -> torch.Tensor:
-        return ((torch.tanh(xs[s] @ w) - torch.tanh(xs[s] @ target)) ** 2).mean()
-
-    return loss
 
 
 @pytest.mark.parametrize(
@@ -36,7 +26,7 @@ def _problem():
 )
 @pytest.mark.parametrize("horizon", [0.5, 0.9, 0.99])
 def test_horizon_hypergradient_is_gradient_against_trail_of_recorded_updates(factory, horizon):
-    loss = _problem()
+    loss = tanh_regression()
     w = torch.zeros(8, dtype=torch.float64, requires_grad=True)
     opt = factory([w], horizon)
     history = [w.detach().clone()]
@@ -58,7 +48,7 @@ def test_horizon_hypergradient_is_gradient_against_trail_of_recorded_updates(fac
 
 def test_horizon_hypergradient_matches_autograd_through_unrolled_steps():
     """Reference: autograd through the unrolled weight trajectory, directions held fixed."""
-    loss = _problem()
+    loss = tanh_regression()
     horizon = 0.8
     w = torch.zeros(8, dtype=torch.float64, requires_grad=True)
     opt = TowerSGD([w], lr=0.2, horizon=horizon, retreat=False)
@@ -85,7 +75,7 @@ def test_horizon_hypergradient_matches_autograd_through_unrolled_steps():
 
 def test_horizon_zero_is_the_one_step_hypergradient():
     """Reference: Baydin et al., ICLR 2018 (SGD-HD): ĥ_1 = -a_0 <g_s, g_{s-1}> for plain SGD."""
-    loss = _problem()
+    loss = tanh_regression()
     w = torch.zeros(8, dtype=torch.float64, requires_grad=True)
     opt = TowerSGD([w], lr=0.3, horizon=0, retreat=False)
     grads = []

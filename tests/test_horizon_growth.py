@@ -13,23 +13,13 @@ from typing import Any
 
 import pytest
 import torch
+from small_problems import tanh_regression
 from torch import nn
 
 from stepsize_tower import TowerAdam, TowerSGD, engine
 from stepsize_tower import horizon as horizon_rules
 
 GROWING = (0.5, 0.9)  # spans 2 ... 10 updates: the growth is over by step 10
-
-
-def _problem() -> Any:
-    gen = torch.Generator().manual_seed(5)
-    target = torch.randn(8, dtype=torch.float64, generator=gen)
-    xs = [torch.randn(12, 8, dtype=torch.float64, generator=gen) for _ in range(16)]
-
-    def loss(w: torch.Tensor, s: int) -> torch.Tensor:
-        return ((torch.tanh(xs[s] @ w) - torch.tanh(xs[s] @ target)) ** 2).mean()
-
-    return loss
 
 
 def _omega(s: int) -> float:
@@ -51,7 +41,7 @@ def _omega(s: int) -> float:
 @pytest.mark.parametrize("steps", [3, 7, 14])
 def test_growing_horizon_hypergradient_is_gradient_against_recorded_trail(factory: Any, steps: int) -> None:
     # Reference: the recursion of the definition on the recorded weights (common practice).
-    loss = _problem()
+    loss = tanh_regression()
     w = torch.zeros(8, dtype=torch.float64, requires_grad=True)
     opt = factory([w])
     history = [w.detach().clone()]
