@@ -49,3 +49,20 @@ def tanh_regression(batches: int = 16) -> Callable[[torch.Tensor, int], torch.Te
         return ((torch.tanh(xs[s] @ w) - torch.tanh(xs[s] @ target)) ** 2).mean()
 
     return loss
+
+
+def recorded_run(
+    opt: torch.optim.Optimizer, w: torch.Tensor, loss: Callable[[torch.Tensor, int], torch.Tensor], steps: int
+) -> tuple[list[torch.Tensor], torch.Tensor]:
+    """Take ``steps`` steps of ``opt`` on ``loss(w, s)``; the weights before every step and after
+    the last, and the last step's gradient."""
+    history = [w.detach().clone()]
+    g_last = torch.zeros_like(w)
+    for s in range(steps):
+        opt.zero_grad()
+        loss(w, s).backward()
+        assert w.grad is not None
+        g_last = w.grad.clone()
+        opt.step()
+        history.append(w.detach().clone())
+    return history, g_last

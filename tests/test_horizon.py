@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import pytest
 import torch
-from small_problems import tanh_regression
+from small_problems import recorded_run, tanh_regression
 
 from stepsize_tower import TowerAdam, TowerAdamW, TowerSGD
 
@@ -29,14 +29,8 @@ def test_horizon_hypergradient_is_gradient_against_trail_of_recorded_updates(fac
     loss = tanh_regression()
     w = torch.zeros(8, dtype=torch.float64, requires_grad=True)
     opt = factory([w], horizon)
-    history = [w.detach().clone()]
     steps = 9
-    for s in range(steps):
-        opt.zero_grad()
-        loss(w, s).backward()
-        g_s = w.grad.clone()
-        opt.step()
-        history.append(w.detach().clone())
+    history, g_s = recorded_run(opt, w, loss, steps)
     # reference: the definition, from the recorded weights (independent of the optimizer's buffers)
     s = steps - 1
     trail = sum(horizon ** (s - 1 - j) * (history[j] - history[j + 1]) for j in range(s))

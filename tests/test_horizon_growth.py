@@ -13,7 +13,7 @@ from typing import Any
 
 import pytest
 import torch
-from small_problems import tanh_regression
+from small_problems import recorded_run, tanh_regression
 from torch import nn
 
 from stepsize_tower import TowerAdam, TowerSGD, engine
@@ -44,20 +44,14 @@ def test_growing_horizon_hypergradient_is_gradient_against_recorded_trail(factor
     loss = tanh_regression()
     w = torch.zeros(8, dtype=torch.float64, requires_grad=True)
     opt = factory([w])
-    history = [w.detach().clone()]
-    for s in range(steps):
-        opt.zero_grad()
-        loss(w, s).backward()
-        g_s = w.grad.clone()
-        opt.step()
-        history.append(w.detach().clone())
+    history, g_s = recorded_run(opt, w, loss, steps)
     s = steps - 1
     trail = torch.zeros(8, dtype=torch.float64)
     for j in range(s):
         trail = (1 - _omega(j)) * trail + _omega(j) * (history[j] - history[j + 1])
     expected = -torch.dot(g_s, trail).item() / _omega(s)
-    got = opt.param_groups[0]["tower"]["hypergrad"][0, 0].item()
     assert abs(expected) > 1e-8
+    got = opt.param_groups[0]["tower"]["hypergrad"][0, 0].item()
     assert got == pytest.approx(expected, rel=1e-9, abs=1e-15)
 
 
