@@ -58,7 +58,7 @@ def weight_at(horizon: Any, steps_taken: int) -> float:
     """:math:`\\omega_s` for ``steps_taken`` steps already taken (host arithmetic, float64)."""
     if not is_growing(horizon):
         return 1.0 - float(horizon)
-    shortest, longest_ = 1.0 - float(horizon[0]), 1.0 - float(horizon[1])
+    shortest, longest_ = _weight_bounds(horizon)
     if steps_taken <= 0:
         return shortest
     return min(shortest, max(longest_, 1.0 / steps_taken))
@@ -67,9 +67,14 @@ def weight_at(horizon: Any, steps_taken: int) -> float:
 def weight_tensor(horizon: Sequence[float], step: Tensor) -> Tensor:
     """:math:`\\omega_s` of a growing horizon from the step-count tensor (no host read); the same
     float64 value as :func:`weight_at` for the same count."""
-    shortest, longest_ = 1.0 - float(horizon[0]), 1.0 - float(horizon[1])
+    shortest, longest_ = _weight_bounds(horizon)
     inverse = torch.reciprocal(step.to(torch.float64))  # 1/0 = inf: clamped to the shortest trail
     return inverse.clamp(min=longest_, max=shortest)
+
+
+def _weight_bounds(horizon: Sequence[float]) -> tuple[float, float]:
+    """The largest and smallest weight of a growing horizon: ``(1 - γ_0, 1 - γ_1)``."""
+    return 1.0 - float(horizon[0]), 1.0 - float(horizon[1])
 
 
 def check(horizon: Any) -> str | None:

@@ -96,26 +96,23 @@ def fold_update(
     ``skip`` (a 0-dim bool tensor: ``move`` changes nothing where it holds) the weight is the
     tensor ``weight * (1 - skip)``, so a skipped step leaves ``E`` exactly as it was, with no
     host read; for float32/float64 tensors the taken step is bitwise the same as with the
-    float weight. 16-bit trails are restored with ``where`` instead. ``weight`` may itself be a
-    0-dim tensor (a growing horizon's weight, not read).
+    float weight. 16-bit trails are restored with ``where`` instead. With ``skip``, ``weight``
+    may also be a 0-dim tensor (a growing horizon's weight on masked steps, not read).
     """
-    if skip is None and not isinstance(weight, Tensor):
+    if skip is None:
+        assert not isinstance(weight, Tensor), "a tensor weight comes with masked steps, which pass skip"
         torch._foreach_lerp_(trails, params, weight)
         move()
         torch._foreach_add_(trails, params, alpha=-weight)
     elif all(t.dtype in _EXACT_DTYPES for t in trails):
-        taken = skip if skip is not None else torch.zeros((), dtype=torch.bool, device=trails[0].device)
-        kept = {dtype: ((~taken).to(dtype) * weight).to(dtype) for dtype in {t.dtype for t in trails}}  # one per dtype
+        kept = {dtype: ((~skip).to(dtype) * weight).to(dtype) for dtype in {t.dtype for t in trails}}  # one per dtype
         torch._foreach_lerp_(trails, params, [kept[t.dtype] for t in trails])
         move()
         dropped = {dtype: -k for dtype, k in kept.items()}
         torch._foreach_addcmul_(trails, params, [dropped[t.dtype] for t in trails])
     else:
-        if isinstance(weight, Tensor):  # 16-bit trails: the weight as a float (one read, rare)
+        if isinstance(weight, Tensor):  # 16-bit trails round like the float weight: one read (rare)
             weight = float(weight)
-        if skip is None:
-            fold_update(trails, params, weight, move)
-            return
         before = [t.clone() for t in trails]
         fold_update(trails, params, weight, move)
         for t, old in zip(trails, before, strict=True):
