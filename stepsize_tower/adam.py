@@ -88,6 +88,7 @@ class TowerAdam(TowerOptimizer):
         first_step_limit: float | None = DEFAULT_FIRST_STEP_LIMIT,
         growth_search: float | None = None,
         schedule_hold_back: float = DEFAULT_SCHEDULE_HOLD_BACK,
+        lagged: bool = True,
     ) -> None:
         if weight_decay is None:
             weight_decay = self._default_weight_decay
@@ -110,6 +111,7 @@ class TowerAdam(TowerOptimizer):
             "first_step_limit": first_step_limit,
             "growth_search": growth_search,
             "schedule_hold_back": schedule_hold_back,
+            "lagged": lagged,
         }
         super().__init__(params, defaults)
 

@@ -31,6 +31,7 @@ __all__ = [
     "shard",
     "shard_group",
     "shards_across_ranks",
+    "sum_across_ranks",
 ]
 
 
@@ -111,6 +112,13 @@ def shard_group(params: list[Tensor]) -> Any:
             )
         return mesh.get_group(shard_dims[0])
     return None
+
+
+def sum_across_ranks(value: Tensor, group: Any = None) -> Tensor:
+    """``value`` summed over the ranks of ``group`` (a float64 copy; one all-reduce, no host read)."""
+    total = value.detach().double().clone()
+    dist.all_reduce(total, op=dist.ReduceOp.SUM, group=group)
+    return total
 
 
 def reduce_across_ranks(

@@ -4,7 +4,9 @@
 
     plan       the step's flags, once, from the host's clock (no read)   (plan.make_plan, host_clock)
     measure    <g_s, d_{0,s-1}>, <g_s, d_{0,s}>, <g_s, E>, <g_s, T_j>,
-               the largest gradient entry, finiteness (reads only)        (measure.measure)
+               the largest gradient entry, finiteness (reads only); once
+               settled, <g_{s-1}, E> kept by the last update pass in place
+               of <g_s, E> (option lagged, the default)                    (measure.measure, lag)
     complete   sum the partial values over the ranks of a sharded group  (measure.complete_across_ranks)
     decide     anything non-finite -> skip: nothing changes, skipped += 1;
                the loss rose (start-up test; under clipping, the direction
@@ -15,7 +17,8 @@
                schedule anneals lr, level 1 holds back its lowering moves  (schedule_anneal)
                cut by the first-step limit on the first step and on steps
                whose lr rises above its peak (a warm-up)                 (safeguards.limit_first_step)
-    apply      w_s = w_{s-1} - a_{0,s} d_{0,s} (the base's update), folded into the trail  (trail)
+    apply      w_s = w_{s-1} - a_{0,s} d_{0,s} (the base's update), folded into the trail  (trail);
+               lagged: <g_s, E> of the trail before it, kept for the next step       (lag)
 
 Host reads: during the start-up window, one per group and step (the skip/retreat flags, which
 also keep the host's clock of the step count, :mod:`stepsize_tower.host_clock`); once settled,
@@ -34,14 +37,14 @@ from typing import Any
 import torch
 from torch import Tensor
 
-from . import clipping, distributed, trail
+from . import clipping, distributed, lag, trail
 from .bases import BaseRule, has_trail_kernels
 from .clipping import ClipSignal
 from .group_state import EFFECTIVE_LR_KEY, TOWER_KEY, new_tower_state, publish_effective_lr
 from .host_clock import Clock, clock_of, start_clock
 from .hyperparams import hyperparam_step
 from .levels import Level, tower_step
-from .measure import Measurement, complete_across_ranks, grads_finite, measure
+from .measure import Measurement, complete_across_ranks, grads_finite, measure, trail_dot_of
 from .plan import Batch, Plan, host_lr, lr_tensor, make_plan
 from .safeguards import (
     FIRST_MOVE_LIMIT,
@@ -85,8 +88,8 @@ def step_group(rule: BaseRule, group: dict[str, Any], state: Any, owner: str) ->
     m = measure(rule, group, ts, plan, batch)
     any_grad = None
     if sharded:  # partial sums over this rank's parameters: complete them before deciding
-        m, any_grad = complete_across_ranks(m, group, len(batch.params))
-    masked = plan.settled and _masks_on(device)
+        m, any_grad = complete_across_ranks(m, group, len(batch.params), trail_complete=plan.lagged)
+    masked = plan.masked
     if any_grad is not None and not masked and not bool(any_grad):
         return  # no rank had a gradient in this group
     update_dot = _update_dot(plan, m)
@@ -111,7 +114,7 @@ def step_group(rule: BaseRule, group: dict[str, Any], state: Any, owner: str) ->
     a0 = learn(rule, group, ts, plan, batch, m, update_dot, search_dot)
     if clip is not None:
         clipping.remember(ts, clip)
-    apply(rule, group, ts.get("hyper_value"), plan, batch, a0)
+    apply(rule, group, ts, plan, batch, a0, pending=m.pending)
 
 
 def _masked_step(
@@ -149,7 +152,7 @@ def _masked_step(
     published = group[EFFECTIVE_LR_KEY]
     a0 = learn(rule, group, ts, plan, batch, m, update_dot, None, keep)
     group[EFFECTIVE_LR_KEY] = torch.where(keep, group[EFFECTIVE_LR_KEY], published)
-    apply(rule, group, ts.get("hyper_value"), plan, batch, a0, skip=~keep)
+    apply(rule, group, ts, plan, batch, a0, skip=~keep, pending=m.pending)
 
 
 def _masks_on(device: torch.device) -> bool:
@@ -222,7 +225,10 @@ def _clip_signal(m: Measurement) -> ClipSignal | None:
 
 
 def _update_dot(plan: Plan, m: Measurement) -> Tensor:
-    """``<g_s, Δ>`` against the trail (``D = E / (1 - γ)``) or the last update ``Δ = a_{0,s-1} d_{0,s-1}``."""
+    """``<g_s, Δ>`` against the trail (``D = E / (1 - γ)``) or the last update ``Δ = a_{0,s-1} d_{0,s-1}``;
+    lagged, the last taken step's value, already divided by its weight (:mod:`stepsize_tower.lag`)."""
+    if m.trail_dot is not None and plan.lagged:
+        return m.trail_dot
     if m.trail_dot is not None:
         return m.trail_dot / plan.trail_weight
     return m.prev_dot * plan.a_prev
@@ -269,7 +275,7 @@ def learn(
         a0 = limit_first_step(ts, a0, FIRST_MOVE_LIMIT, per_unit_lr, keep)
     if u_before is not None and plan.horizon > 0 and not plan.rising:  # a capped warm-up step is no fall
         active = plan.steps_taken >= RETREAT_WINDOW
-        trail.forget_larger_steps(ts, u_before, batch.states, plan.unit_of, keep, active)
+        trail.forget_larger_steps(ts, u_before, batch.states, plan.unit_of, keep, active, also=m.pending)
     publish_effective_lr(group, a0)
     if keep is None:
         ts["prev_slope"].copy_(m.slope)
@@ -299,35 +305,56 @@ def _typical_scale(group: dict[str, Any], plan: Plan, tensors: list[Tensor], a0:
 def apply(
     rule: BaseRule,
     group: dict[str, Any],
-    learned: Tensor | None,
+    ts: dict[str, Tensor],
     plan: Plan,
     batch: Batch,
     a0: Tensor,
     skip: Tensor | None = None,
+    pending: Tensor | None = None,
 ) -> None:
-    """The base update with step sizes ``a0`` [units], folded into the trail when ``horizon > 0``.
+    """The base update with step sizes ``a0`` [units], folded into the trail when ``horizon > 0``;
+    with ``lagged``, the trail hypergradient taken on the way (or ``pending``, measured before
+    the step) is kept for the next step.
 
     ``skip``: a 0-dim bool tensor; where it holds, nothing changes (no host read).
     """
-    if not batch.params:  # a rank holding none of a sharded group's parameters
+    horizon = plan.horizon if plan.levels else 0.0
+    lagged, weight = lag.wanted(group, horizon), plan.trail_weight
+    if not batch.params:  # a rank holding none of a sharded group's parameters (its part of h is 0)
+        if lagged:
+            _keep_lagged(group, ts, plan, torch.zeros(plan.units, dtype=torch.float64, device=ts["step"].device), skip)
         return
+    learned = ts.get("hyper_value")
     per_unit = [a0[u] for u in range(a0.shape[0])]  # one tensor per unit: one fused kernel call per unit
     step_sizes = [per_unit[u] for u in plan.unit_of]
     params, grads, states = batch.params, batch.grads, batch.states
-    horizon = plan.horizon if plan.levels else 0.0
     if horizon == 0:
         rule.update(group, learned, params, grads, states, step_sizes, skip)
         return
     trails = trail.ensure(params, states)
-    weight = plan.trail_weight
+    in_pass = lagged and pending is None
     if a0.shape[0] == 1 and has_trail_kernels(rule) and skip is None and not isinstance(weight, Tensor):
-        if rule.update_with_trail(group, params, grads, states, trails, a0[0], weight):
+        done, h = rule.update_with_trail(group, params, grads, states, trails, a0[0], weight, with_dot=in_pass)
+        if done:
+            h = pending if h is None else h
+            if lagged and h is not None:
+                _keep_lagged(group, ts, plan, h, skip)
             return
+    h = trail_dot_of(rule, group, plan, batch, ts["step"].device) if in_pass else pending
 
     def move() -> None:
         rule.update(group, learned, params, grads, states, step_sizes, skip)
 
     trail.fold_update(trails, params, weight, move, skip)
+    if lagged and h is not None:
+        _keep_lagged(group, ts, plan, h, skip)
+
+
+def _keep_lagged(group: dict[str, Any], ts: dict[str, Tensor], plan: Plan, h: Tensor, skip: Tensor | None) -> None:
+    """Keep the update pass's ``h`` for the next step, summed over the ranks of a sharded group."""
+    if plan.sharded:
+        h = distributed.sum_across_ranks(h, distributed.shard_group(group["params"]))
+    lag.keep(ts, h, plan.trail_weight, skip)
 
 
 def plain_step(

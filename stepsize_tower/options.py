@@ -211,9 +211,9 @@ def _check_bool(name: str) -> Callable[[Any], str | None]:
 
 
 def _check_native(value: Any) -> str | None:
-    if value is None or isinstance(value, bool) or value == "lagged":
+    if value is None or isinstance(value, bool) or value == "lagged":  # "lagged": an older spelling of True
         return None
-    return f"Invalid native: {value!r}; expected None (the default), True, False or 'lagged'"
+    return f"Invalid native: {value!r}; expected None (the default), True or False"
 
 
 def _check_native_flag(value: Any) -> str | None:
@@ -352,6 +352,19 @@ TOWER_OPTIONS: tuple[Option, ...] = (
         "0.99 for SGD (with or without momentum)",
     ),
     Option(
+        "lagged",
+        "after the start-up window, the step size of step s+1 learns from the trail hypergradient of step "
+        "s, ``<g_s, E_{s-1}>``, taken inside step s's update pass, instead of from ``<g_{s+1}, E_s>`` in a "
+        "read pass of its own: one pass over the gradients and the trail less per step, and the step size "
+        "reacts a step later. Kept in the state, so a resumed run continues bit for bit "
+        "(:mod:`stepsize_tower.lag`). ``False``: the exact hypergradient",
+        _check_bool("lagged"),
+        legacy=False,
+        default_doc="True for TowerAdam and TowerAdamW, measured within noise of the exact hypergradient on the "
+        "sensitivity and field benchmarks; False for TowerSGD, where the sensitivity benchmark measured a small "
+        "cost (experiments/README.md, session 14); False in a checkpoint saved before this option existed",
+    ),
+    Option(
         "growth_search",
         "opt-in start-up search for a step size typed far too small, for full-batch or large-batch runs: "
         "while every step so far kept at least half the loss's slope along it, level 1's growth of "
@@ -468,9 +481,7 @@ ADAM_OPTIONS: tuple[Option, ...] = (
         "``False``: never (the reference path, as on CUDA). Same results up to rounding; needs "
         'float32/float64 parameters, ``granularity="group"``, ``horizon > 0``, a C++ compiler and '
         "ninja, and uses the reference path otherwise (one logged notice). ``STEPSIZE_TOWER_NATIVE=0`` "
-        'turns it off. ``"lagged"`` (opt-in): the hypergradient of step s is taken inside step s-1\'s '
-        "update pass (one read pass less, 8-13 % faster; the step size reacts a step later; a resumed "
-        "or copied optimizer takes one exact step first)",
+        'turns it off. ``"lagged"``, from before the lag became the method (option ``lagged``), means True',
         _check_native,
         legacy=False,
     ),

@@ -11,9 +11,11 @@ import torch
 from torch import Tensor
 
 from . import horizon as horizon_rules
+from . import lag
 from .bases import BaseRule
 from .group_state import levels_of
 from .host_clock import Clock
+from .lag import LAG_KEY
 from .levels import Level
 from .safeguards import RETREAT_WINDOW
 
@@ -65,6 +67,11 @@ class Plan:
     exact: bool
     #: After the start-up window: nothing depends on the step count, and the step reads nothing.
     settled: bool
+    #: A settled step that takes the masked path (no host read; :mod:`stepsize_tower.engine`).
+    masked: bool
+    #: The trail hypergradient is the one kept from the last taken step (option ``lagged``,
+    #: settled steps, not exact): ``ts["lag_dot"]``, already divided by its trail weight.
+    lagged: bool
     #: ``group["lr"]`` is above its largest value of the taken steps (the first step, a warm-up).
     rising: bool
     #: ``group["lr"]`` is below that largest value: a schedule is annealing it
@@ -128,6 +135,7 @@ def make_plan(
     lr = host_lr(group)
     # The start-up test runs in the first steps and for as long as the growth search goes on.
     startup_test = bool(group["retreat"]) and bool(levels) and (steps_taken < RETREAT_WINDOW or searching)
+    exact = horizon == 0 or startup_test or searching
     return Plan(
         levels=levels,
         units=units,
@@ -145,8 +153,10 @@ def make_plan(
         startup_test=startup_test,
         clip_check=startup_test and steps_taken <= 1,
         blowup_guard=bool(group["retreat"]) and bool(levels) and not rule.normalized,
-        exact=horizon == 0 or startup_test or searching,
+        exact=exact,
         settled=clock.settled,
+        masked=clock.settled and masks,
+        lagged=not exact and clock.settled and lag.wanted(group, horizon) and LAG_KEY in ts,
         rising=bool(levels) and lr is not None and lr > clock.peak_lr,
         annealing=bool(levels) and lr is not None and lr < clock.peak_lr,
     )

@@ -66,7 +66,7 @@ import torch
 from torch import Tensor
 from torch import distributed as dist
 
-from . import clipping, trail
+from . import clipping, lag, trail
 from .bases import BaseRule, chunks
 from .clipping import ClipSignal
 from .group_state import EFFECTIVE_LR_KEY, publish_effective_lr
@@ -221,6 +221,7 @@ def take_back(
             trail.clear(st)
         else:
             trail.clear_where(st, fires)
+    lag.restart(ts, fires)
     ts["log_step"][:, 0] += factor.log()
     ts["prev_step"][:, 0] = a_new
     before = group.get(EFFECTIVE_LR_KEY)

@@ -81,6 +81,7 @@ class TowerSGD(TowerOptimizer):
         growth_search: float | None = None,
         schedule_hold_back: float = DEFAULT_SCHEDULE_HOLD_BACK,
         native: bool | None = None,
+        lagged: bool = False,
     ) -> None:
         defaults = {
             "lr": lr,
@@ -100,6 +101,7 @@ class TowerSGD(TowerOptimizer):
             "growth_search": growth_search,
             "schedule_hold_back": schedule_hold_back,
             "native": native,
+            "lagged": lagged,
         }
         super().__init__(params, defaults)
 

@@ -138,6 +138,7 @@ def forget_larger_steps(
     unit_of: list[int],
     keep: Tensor | None = None,
     active: bool = True,
+    also: Tensor | None = None,
 ) -> None:
     r"""Scale the trails of units whose learned factor fell, once it is far below its peak.
 
@@ -152,7 +153,8 @@ def forget_larger_steps(
     ``keep`` (a 0-dim bool tensor) nothing changes where it is False, and nothing is read (the
     trails are multiplied by ``r``, exactly 1 where nothing fires); without it, one read decides
     whether any unit fires. With ``active=False`` (the start-up window, whose steps read at most
-    once) only the peak is kept.
+    once) only the peak is kept. ``also`` ([U], a dot product against the trails taken before
+    this step's update, :mod:`stepsize_tower.lag`) is scaled alike, in place.
     """
     u = ts["log_step"][:, 0]
     peak = ts.get(PEAK_KEY)
@@ -171,6 +173,8 @@ def forget_larger_steps(
     else:
         fires = fires & keep
     factor = torch.where(fires, (u - u_before).exp(), torch.ones_like(u))
+    if also is not None:
+        also.mul_(factor.to(also))
     pairs = [(st[TRAIL_KEY], unit) for st, unit in zip(states, unit_of, strict=True) if TRAIL_KEY in st]
     if pairs:
         torch._foreach_mul_([t for t, _ in pairs], [factor[unit].to(t.dtype) for t, unit in pairs])

@@ -18,6 +18,7 @@ from torch import nn
 
 from stepsize_tower import TowerAdam, TowerSGD, engine
 from stepsize_tower import horizon as horizon_rules
+from stepsize_tower.safeguards import RETREAT_WINDOW
 
 GROWING = (0.5, 0.9)  # spans 2 ... 10 updates: the growth is over by step 10
 
@@ -32,20 +33,27 @@ def _omega(s: int) -> float:
 @pytest.mark.parametrize(
     "factory",
     [
-        lambda p: TowerSGD(p, lr=0.3, horizon=GROWING, retreat=False),
-        lambda p: TowerSGD(p, lr=0.1, momentum=0.9, horizon=GROWING, retreat=False),
-        lambda p: TowerAdam(p, lr=0.01, horizon=GROWING, retreat=False),
+        lambda p, lag: TowerSGD(p, lr=0.3, horizon=GROWING, retreat=False, lagged=lag),
+        lambda p, lag: TowerSGD(p, lr=0.1, momentum=0.9, horizon=GROWING, retreat=False, lagged=lag),
+        lambda p, lag: TowerAdam(p, lr=0.01, horizon=GROWING, retreat=False, lagged=lag),
     ],
     ids=["sgd", "momentum", "adam"],
 )
+@pytest.mark.parametrize("lagged", [False, True], ids=["exact", "lagged"])
 @pytest.mark.parametrize("steps", [3, 7, 14])
-def test_growing_horizon_hypergradient_is_gradient_against_recorded_trail(factory: Any, steps: int) -> None:
+def test_growing_horizon_hypergradient_is_gradient_against_recorded_trail(
+    factory: Any, lagged: bool, steps: int
+) -> None:
     # Reference: the recursion of the definition on the recorded weights (common practice).
+    # Lagged, after the start-up window the step learns from the last step's value
+    # (stepsize_tower.lag): step s from -<g_{s-1}, E_{s-2}> / ω_{s-1}.
     loss = tanh_regression()
     w = torch.zeros(8, dtype=torch.float64, requires_grad=True)
-    opt = factory([w])
-    history, g_s = recorded_run(opt, w, loss, steps)
-    s = steps - 1
+    opt = factory([w], lagged)
+    history, _ = recorded_run(opt, w, loss, steps)
+    s = steps - 2 if lagged and steps - 1 >= RETREAT_WINDOW else steps - 1
+    at = history[s].clone().requires_grad_(True)
+    (g_s,) = torch.autograd.grad(loss(at, s), at)
     trail = torch.zeros(8, dtype=torch.float64)
     for j in range(s):
         trail = (1 - _omega(j)) * trail + _omega(j) * (history[j] - history[j + 1])

@@ -177,9 +177,9 @@ class _Spy:
         self.calls = 0
         real = native.adam_trail_update
 
-        def counted(*args: Any, **kwargs: Any) -> None:
+        def counted(*args: Any, **kwargs: Any) -> Any:
             self.calls += 1
-            real(*args, **kwargs)
+            return real(*args, **kwargs)
 
         monkeypatch.setattr(native, "adam_trail_update", counted)
 

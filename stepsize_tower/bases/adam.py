@@ -10,7 +10,7 @@ import torch
 from torch import Tensor
 from torch.optim.adam import adam as torch_adam
 
-from . import chunks, compiled, fused, lagged, masking, native
+from . import chunks, compiled, fused, masking, native
 from .adam_math import Beta, adam_denominator, adam_direction, betas_in_use, bias_corrections, update_moments
 from .buffers import keep
 from .grad import loss_grad
@@ -251,10 +251,6 @@ class AdamRule:
         kernels = self._kernels(group, params, grads, trails)
         if kernels is None:
             return None
-        if kernels is native and group["native"] == "lagged":
-            kept = lagged.recall(trails[0])
-            if kept is not None:  # h of the last step; NaN flags a non-finite gradient, as the exact dot would
-                return kept if native.all_finite(grads) else torch.full((), float("nan"), dtype=torch.float64)
         dot = native.trail_dot if kernels is native else compiled.two_pass_dot
         return dot(
             grads,
@@ -265,6 +261,10 @@ class AdamRule:
             maximize=group["maximize"],
         )
 
+    def pass_takes_dot(self, group: dict[str, Any], params: list[Tensor], grads: list[Tensor]) -> bool:
+        """Whether the update pass takes the dot product on the way (the native kernel applies)."""
+        return self._kernels(group, params, grads) is native
+
     def update_with_trail(
         self,
         group: dict[str, Any],
@@ -274,27 +274,32 @@ class AdamRule:
         trails: list[Tensor],
         a0: Tensor,
         weight: float,
-    ) -> bool:
+        with_dot: bool = False,
+    ) -> tuple[bool, Tensor | None]:
         """The Adam step with step size ``a0`` and ``E <- (1 - weight) E + weight a0 d`` in one kernel pass.
 
-        Returns False (and changes nothing but the lazily created moments) where no kernel
-        applies; the engine then takes the default update plus the trail's passes.
+        Returns ``(False, None)`` (and changes nothing but the lazily created moments) where no
+        kernel applies; the engine then takes the default update plus the trail's passes. With
+        ``with_dot``, the second value is ``Σ <g~, E>`` of the trails before the update (the
+        native pass takes it on the way; the compiled kernels in a read pass first).
         """
         for p, st in zip(params, states, strict=True):
             _init(p, st)
         moments = [st["exp_avg"] for st in states], [st["exp_avg_sq"] for st in states]
         kernels = self._kernels(group, params, grads, *moments, trails)
         if kernels is None:
-            return False
+            return False, None
         beta1, beta2 = group["betas"]
         steps = [st["step"] for st in states]
+        h = None
         if kernels is native:  # the kernel advances the counts itself (no per-tensor Python work)
-            extra: dict[str, bool] = {"increment_steps": True, "with_dot": group["native"] == "lagged"}
+            extra: dict[str, bool] = {"increment_steps": True, "with_dot": with_dot}
         else:
+            if with_dot:
+                h = self.trail_dot(group, params, grads, trails)
             torch._foreach_add_(steps, 1)
             extra = {}
-        lag = extra.get("with_dot", False)
-        h = kernels.adam_trail_update(
+        kept = kernels.adam_trail_update(
             params,
             grads,
             *moments,
@@ -310,9 +315,7 @@ class AdamRule:
             weight,
             **extra,
         )
-        if lag:
-            lagged.remember(trails[0], h)
-        return True
+        return True, kept if kernels is native else h
 
 
 def _compiled_tensors(params: list[Tensor]) -> bool:

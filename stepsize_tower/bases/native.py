@@ -66,6 +66,7 @@ __all__ = [
     "applies",
     "available",
     "dot_and_max",
+    "largest",
     "reset",
     "sgd_trail_update",
     "trail_dot",
@@ -235,6 +236,12 @@ def dot_and_max(
     return torch.tensor(dot, dtype=torch.float64), torch.tensor(largest, dtype=torch.float64)
 
 
+def largest(tensors: Sequence[Tensor]) -> Tensor:
+    """``max |x|`` over every entry (0-dim float64; NaN if any entry is NaN): one read pass."""
+    tensors = list(tensors)
+    return torch.tensor(_kernels().largest(tensors) if tensors else 0.0, dtype=torch.float64)
+
+
 def all_finite(tensors: Sequence[Tensor]) -> bool:
     """Whether every entry of the tensors is finite: one read pass (same tensor requirements)."""
     tensors = list(tensors)
@@ -267,7 +274,7 @@ def adam_trail_update(
     ``trail_weight`` is :math:`\omega`. Same tensor requirements as :func:`trail_dot`.
     With ``with_dot`` the same pass also returns :math:`h = \sum \langle \tilde g, E\rangle` of
     the trails as they were before this update (0-dim float64, summed as :func:`trail_dot`
-    sums): the one-step-lagged variant, 36 instead of 44 bytes per float32 parameter.
+    sums): the lagged hypergradient (:mod:`stepsize_tower.lag`), 36 instead of 44 bytes per float32 parameter.
     """
     params = list(params)
     if not params:
@@ -296,7 +303,8 @@ def sgd_trail_update(
     nesterov: bool,
     maximize: bool,
     trail_weight: float,
-) -> None:
+    with_dot: bool = False,
+) -> Tensor | None:
     r"""One ``torch.optim.SGD`` step with step size ``a`` and the trail update, in one pass, in place.
 
     .. math::
@@ -307,12 +315,15 @@ def sgd_trail_update(
     ``buffers`` (the momentum buffers, all present: the first step, which creates them, takes
     the default path) are used when ``momentum != 0``; ``kept`` receives :math:`\tilde g` for
     plain SGD and Nesterov (their ``prev_grad``), else is unused. Same tensor requirements as
-    :func:`trail_dot`.
+    :func:`trail_dot`. With ``with_dot`` the same pass also returns :math:`h = \sum \langle
+    \tilde g, E\rangle` of the trails as they were before this update (as :func:`adam_trail_update`).
     """
     params = list(params)
     if not params:
-        return
-    _kernels().sgd_update(
+        return torch.zeros((), dtype=torch.float64) if with_dot else None
+    h = _kernels().sgd_update(
         params, list(grads), list(buffers), list(trails), list(kept), float(a), float(momentum),
         float(dampening), float(weight_decay), bool(nesterov), bool(maximize), float(trail_weight),
+        bool(with_dot),
     )  # fmt: skip
+    return torch.tensor(h, dtype=torch.float64) if with_dot else None

@@ -165,6 +165,36 @@ bool all_finite_of(const std::vector<at::Tensor>& gs) {
   return true;
 }
 
+// The largest |entry| (NaN if any entry is NaN, inf if one is infinite): four chains of
+// at::vec::maximum, which propagates NaN; zero-padded tails add nothing.
+template <typename T>
+double largest_of(const std::vector<at::Tensor>& gs) {
+  using V = at::vec::Vectorized<T>;
+  const auto blocks = blocks_of(gs);
+  std::vector<T> partial(blocks.size(), static_cast<T>(0));
+  for_blocks(blocks, [&](int64_t k, const Block& b) {
+    const T* g = gs[b.tensor].data_ptr<T>();
+    constexpr int64_t W = V::size();
+    V a0(static_cast<T>(0)), a1 = a0, a2 = a0, a3 = a0;
+    int64_t j = b.begin;
+    for (; j + 4 * W <= b.end; j += 4 * W) {
+      a0 = at::vec::maximum(a0, V::loadu(g + j).abs());
+      a1 = at::vec::maximum(a1, V::loadu(g + j + W).abs());
+      a2 = at::vec::maximum(a2, V::loadu(g + j + 2 * W).abs());
+      a3 = at::vec::maximum(a3, V::loadu(g + j + 3 * W).abs());
+    }
+    for (; j < b.end; j += W) a0 = at::vec::maximum(a0, V::loadu(g + j, std::min<int64_t>(W, b.end - j)).abs());
+    T lanes[V::size()];
+    at::vec::maximum(at::vec::maximum(a0, a1), at::vec::maximum(a2, a3)).store(lanes);
+    T m = lanes[0];
+    for (int64_t i = 1; i < V::size(); ++i) m = (std::isnan(m) || std::isnan(lanes[i])) ? NAN : std::max(m, lanes[i]);
+    partial[k] = m;
+  });
+  double out = 0.0;
+  for (T m : partial) out = (std::isnan(out) || std::isnan(m)) ? NAN : std::max(out, static_cast<double>(m));
+  return out;
+}
+
 // ----------------------------------------------------------------------------- update
 
 // float64 sum of exact products of two vectors (zero-padded tails add 0), 8 lanes in a fixed order.
@@ -343,15 +373,18 @@ struct SgdConsts {
 
 // One vector of one tensor, in torch.optim.SGD's order of operations: g~ = +-g + l2 w;
 // heavy ball b = mu b + (1 - damp) g~, d = b (Nesterov d = g~ + mu b); plain d = g~;
-// w = w - a d, E = (1 - omega) E + omega (a d); KEEP stores g~ (the last gradient).
+// w = w - a d, E = (1 - omega) E + omega (a d); KEEP stores g~ (the last gradient). With ``acc``
+// (the lagged hypergradient), also adds <g~, E> of the old trail to it.
 template <typename T, bool FULL, bool MOMENTUM, bool NESTEROV, bool KEEP>
-inline void sgd_vec(T* wp, const T* gp, T* bp, T* ep, T* kp, int64_t count, const SgdConsts<T>& k) {
+inline void sgd_vec(T* wp, const T* gp, T* bp, T* ep, T* kp, int64_t count, const SgdConsts<T>& k,
+                    DotAcc<T>* acc) {
   using V = at::vec::Vectorized<T>;
   const auto load = [count](const T* ptr) { return FULL ? V::loadu(ptr) : V::loadu(ptr, count); };
   const auto store = [count](const V& x, T* ptr) { FULL ? x.store(ptr) : x.store(ptr, count); };
   V w = load(wp), g = load(gp), e = load(ep);
   if (k.maximize) g = g.neg();
   if (k.l2_on) g = g + k.l2 * w;
+  if (acc != nullptr) acc->add(g, e);
   V d = g;
   if constexpr (MOMENTUM) {
     const V b = load(bp) * k.mu + k.one_minus_damp * g;
@@ -364,11 +397,15 @@ inline void sgd_vec(T* wp, const T* gp, T* bp, T* ep, T* kp, int64_t count, cons
   store(e * k.keep_e + k.omega * step, ep);
 }
 
+// Returns sum_i <g~_i, E_i> of the old trails when ``with_dot`` (block sums in block order), else 0.
 template <typename T, bool MOMENTUM, bool NESTEROV, bool KEEP>
-void sgd_all(std::vector<at::Tensor>& ws, const std::vector<at::Tensor>& gs, std::vector<at::Tensor>& bs,
-             std::vector<at::Tensor>& es, std::vector<at::Tensor>& ks, double a, const SgdHyper& h) {
+double sgd_all(std::vector<at::Tensor>& ws, const std::vector<at::Tensor>& gs, std::vector<at::Tensor>& bs,
+               std::vector<at::Tensor>& es, std::vector<at::Tensor>& ks, double a, const SgdHyper& h,
+               bool with_dot) {
   constexpr int64_t W = at::vec::Vectorized<T>::size();
-  for_blocks(blocks_of(ws), [&](int64_t, const Block& blk) {
+  const auto blocks = blocks_of(ws);
+  std::vector<double> partial(blocks.size(), 0.0);
+  for_blocks(blocks, [&](int64_t bk, const Block& blk) {
     const int64_t i = blk.tensor;
     T* w = ws[i].data_ptr<T>();
     const T* g = gs[i].data_ptr<T>();
@@ -377,27 +414,30 @@ void sgd_all(std::vector<at::Tensor>& ws, const std::vector<at::Tensor>& gs, std
     T* kept = KEEP ? ks[i].data_ptr<T>() : nullptr;
     const auto at = [](T* ptr, int64_t j) { return ptr == nullptr ? nullptr : ptr + j; };
     const SgdConsts<T> k(a, h);
+    DotAcc<T> acc;
+    DotAcc<T>* accp = with_dot ? &acc : nullptr;
     int64_t j = blk.begin;
     for (; j + W <= blk.end; j += W) {
-      sgd_vec<T, true, MOMENTUM, NESTEROV, KEEP>(w + j, g + j, at(b, j), e + j, at(kept, j), W, k);
+      sgd_vec<T, true, MOMENTUM, NESTEROV, KEEP>(w + j, g + j, at(b, j), e + j, at(kept, j), W, k, accp);
     }
     if (j < blk.end) {
-      sgd_vec<T, false, MOMENTUM, NESTEROV, KEEP>(w + j, g + j, at(b, j), e + j, at(kept, j), blk.end - j, k);
+      sgd_vec<T, false, MOMENTUM, NESTEROV, KEEP>(w + j, g + j, at(b, j), e + j, at(kept, j), blk.end - j, k,
+                                                   accp);
     }
+    partial[bk] = acc.sum();
   });
+  double total = 0.0;
+  for (double x : partial) total += x;
+  return total;
 }
 
 template <typename T>
-void sgd_dispatch(std::vector<at::Tensor>& ws, const std::vector<at::Tensor>& gs, std::vector<at::Tensor>& bs,
-                  std::vector<at::Tensor>& es, std::vector<at::Tensor>& ks, double a, const SgdHyper& h,
-                  bool nesterov) {
-  if (h.momentum == 0.0) {
-    sgd_all<T, false, false, true>(ws, gs, bs, es, ks, a, h);
-  } else if (nesterov) {
-    sgd_all<T, true, true, true>(ws, gs, bs, es, ks, a, h);
-  } else {
-    sgd_all<T, true, false, false>(ws, gs, bs, es, ks, a, h);
-  }
+double sgd_dispatch(std::vector<at::Tensor>& ws, const std::vector<at::Tensor>& gs, std::vector<at::Tensor>& bs,
+                    std::vector<at::Tensor>& es, std::vector<at::Tensor>& ks, double a, const SgdHyper& h,
+                    bool nesterov, bool with_dot) {
+  if (h.momentum == 0.0) return sgd_all<T, false, false, true>(ws, gs, bs, es, ks, a, h, with_dot);
+  if (nesterov) return sgd_all<T, true, true, true>(ws, gs, bs, es, ks, a, h, with_dot);
+  return sgd_all<T, true, false, false>(ws, gs, bs, es, ks, a, h, with_dot);
 }
 
 // ----------------------------------------------------------------------------- dot and largest entry
@@ -551,18 +591,22 @@ double adam_update(std::vector<at::Tensor> params, const std::vector<at::Tensor>
   return update_all<double>(params, grads, exp_avgs, exp_avg_sqs, trails, steps, a, h, with_dot);
 }
 
-void sgd_update(std::vector<at::Tensor> params, const std::vector<at::Tensor>& grads,
-                std::vector<at::Tensor> buffers, std::vector<at::Tensor> trails, std::vector<at::Tensor> kept,
-                double a, double momentum, double dampening, double weight_decay, bool nesterov, bool maximize,
-                double trail_weight) {
+double sgd_update(std::vector<at::Tensor> params, const std::vector<at::Tensor>& grads,
+                  std::vector<at::Tensor> buffers, std::vector<at::Tensor> trails, std::vector<at::Tensor> kept,
+                  double a, double momentum, double dampening, double weight_decay, bool nesterov, bool maximize,
+                  double trail_weight, bool with_dot) {
   const bool heavy = momentum != 0.0, keep = momentum == 0.0 || nesterov;
   check_lists(params, {grads, trails, heavy ? buffers : grads, keep ? kept : grads});
   const SgdHyper h{momentum, dampening, weight_decay, trail_weight, maximize};
   if (params[0].scalar_type() == at::kFloat) {
-    sgd_dispatch<float>(params, grads, buffers, trails, kept, a, h, nesterov);
-  } else {
-    sgd_dispatch<double>(params, grads, buffers, trails, kept, a, h, nesterov);
+    return sgd_dispatch<float>(params, grads, buffers, trails, kept, a, h, nesterov, with_dot);
   }
+  return sgd_dispatch<double>(params, grads, buffers, trails, kept, a, h, nesterov, with_dot);
+}
+
+double largest(const std::vector<at::Tensor>& grads) {
+  check_lists(grads, {grads});
+  return grads[0].scalar_type() == at::kFloat ? largest_of<float>(grads) : largest_of<double>(grads);
 }
 
 bool all_finite(const std::vector<at::Tensor>& grads) {
@@ -578,7 +622,9 @@ PYBIND11_MODULE(TORCH_EXTENSION_NAME, mod) {
   mod.def("compatible", &compatible, "whether the kernels take these tensor lists");
   mod.def("all_finite", &all_finite, "whether every entry of the tensors is finite (one read pass)");
   mod.def("sgd_update", &sgd_update,
-          "SGD step (heavy ball, Nesterov or plain) with the trail update and the kept gradient, one pass");
+          "SGD step (heavy ball, Nesterov or plain) with the trail update and the kept gradient, one pass; "
+          "with_dot: also sum_i <g~_i, E_i> (old trails)");
+  mod.def("largest", &largest, "max_i |g_i| (NaN if any entry is NaN) in one read pass");
   mod.def("adam_update", &adam_update,
           "Adam/AdamW step with the trail update, one pass (increment: advance the step counts first); "
           "with_dot: also sum_i <g~_i, E_i> (old trails)");

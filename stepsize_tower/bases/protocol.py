@@ -128,8 +128,16 @@ class CompiledTrail(Protocol):
         trails: list[Tensor],
         a0: Tensor,
         weight: float,
-    ) -> bool:
-        """The update with one step size ``a0`` and ``E <- (1 - weight) E + weight Δ`` in one kernel; False if not."""
+        with_dot: bool = False,
+    ) -> tuple[bool, Tensor | None]:
+        """The update with one step size ``a0`` and ``E <- (1 - weight) E + weight Δ`` in one kernel.
+
+        Returns whether it applied and, with ``with_dot``, ``Σ <g~, E>`` of the trails before
+        the update (0-dim float64; the lagged hypergradient, :mod:`stepsize_tower.lag`)."""
+        ...
+
+    def pass_takes_dot(self, group: dict[str, Any], params: list[Tensor], grads: list[Tensor]) -> bool:
+        """Whether :meth:`update_with_trail` takes ``Σ <g~, E>`` inside its update pass (no read pass)."""
         ...
 
 

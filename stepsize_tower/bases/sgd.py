@@ -123,6 +123,10 @@ class SGDRule:
             grads, trails, params=params, weight_decay=group["weight_decay"], maximize=group["maximize"]
         )
 
+    def pass_takes_dot(self, group: dict[str, Any], params: list[Tensor], grads: list[Tensor]) -> bool:
+        """Whether the update pass takes the dot product on the way (the native kernel applies)."""
+        return _native_applies(group, params, grads)
+
     def update_with_trail(
         self,
         group: dict[str, Any],
@@ -132,26 +136,29 @@ class SGDRule:
         trails: list[Tensor],
         a0: Tensor,
         weight: float,
-    ) -> bool:
+        with_dot: bool = False,
+    ) -> tuple[bool, Tensor | None]:
         """The SGD step with step size ``a0`` and ``E <- (1 - weight) E + weight a0 d`` in one native pass.
 
-        Returns False, changing nothing, where it does not apply (the first step, which creates
-        the momentum buffers or the kept gradients; learned momentum; tensors outside the
-        kernel's scope): the engine then takes the default update plus the trail's passes.
+        With ``with_dot`` it also returns ``Σ <g~, E>`` of the trails before the update, taken
+        in the same pass. Returns ``(False, None)``, changing nothing, where it does not apply
+        (the first step, which creates the momentum buffers or the kept gradients; learned
+        momentum; tensors outside the kernel's scope): the engine then takes the default update
+        plus the trail's passes.
         """
         momentum, nesterov = group["momentum"], group["nesterov"]
         bufs = _present(states, "momentum_buffer") if momentum != 0 else []
         kept = _present(states, "prev_grad") if momentum == 0 or nesterov else []
         if bufs is None or kept is None:
-            return False
+            return False, None
         others = [lst for lst in (bufs, kept) if lst]
         if not _native_applies(group, params, grads, trails, *others):
-            return False
-        native.sgd_trail_update(
+            return False, None
+        h = native.sgd_trail_update(
             params, grads, bufs, trails, kept, a0, momentum, group["dampening"], group["weight_decay"],
-            nesterov, group["maximize"], weight,
+            nesterov, group["maximize"], weight, with_dot,
         )  # fmt: skip
-        return True
+        return True, h
 
     def update(
         self,
