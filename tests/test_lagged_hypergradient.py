@@ -121,15 +121,8 @@ def _loss_grads(opt: TowerOptimizer, params: list[Tensor]) -> list[Tensor]:
     return [p.grad + wd * p.detach() for p in params]
 
 
-@pytest.mark.parametrize("name", list(MAKERS))
-@pytest.mark.parametrize("masked", [False, True])
-def test_each_settled_step_learns_from_the_last_update_pass(
-    built: None, monkeypatch: pytest.MonkeyPatch, name: str, masked: bool
-) -> None:
-    # Reference: torch.dot in float64 of g~_s and E_{s-1} (snapshotted before step s; the reference
-    # path multiplies in float32, hence rtol 1e-4), divided
-    # by the trail weight; step s+1's levels are handed exactly the kept value.
-    monkeypatch.setattr(engine, "MASK_ON_CPU", masked)
+def _record_update_dots(monkeypatch: pytest.MonkeyPatch) -> list[Tensor]:
+    """The hypergradient each step hands to its levels, recorded through a spy on tower_step."""
     handed: list[Tensor] = []
     real = engine.tower_step
 
@@ -138,6 +131,26 @@ def test_each_settled_step_learns_from_the_last_update_pass(
         return real(ts, levels, update_dot, *args, **kwargs)
 
     monkeypatch.setattr(engine, "tower_step", spy)
+    return handed
+
+
+def _trails_before(opt: TowerOptimizer, params: list[Tensor]) -> list[Tensor]:
+    """Copies of the trails as they are before the next step (zeros before the first)."""
+    return [
+        opt.state[p][TRAIL_KEY].clone() if TRAIL_KEY in opt.state.get(p, {}) else torch.zeros_like(p) for p in params
+    ]
+
+
+@pytest.mark.parametrize("name", list(MAKERS))
+@pytest.mark.parametrize("masked", [False, True])
+def test_each_settled_step_learns_from_the_last_update_pass(
+    built: None, monkeypatch: pytest.MonkeyPatch, name: str, masked: bool
+) -> None:
+    # Reference: torch.dot in float64 of g~_s and E_{s-1} (snapshotted before step s; the reference
+    # path multiplies in float32, hence rtol 1e-4), divided by the trail weight; step s+1's levels
+    # are handed exactly the kept value.
+    monkeypatch.setattr(engine, "MASK_ON_CPU", masked)
+    handed = _record_update_dots(monkeypatch)
     model, x, y = _model_and_data()
     opt = MAKERS[name](model.parameters())
     params = list(model.parameters())
@@ -146,10 +159,7 @@ def test_each_settled_step_learns_from_the_last_update_pass(
     kept: list[Tensor] = []
     for s in range(RETREAT_WINDOW + 8):
         _backward(model, x, y, s)
-        trails = [
-            opt.state[p][TRAIL_KEY].clone() if TRAIL_KEY in opt.state.get(p, {}) else torch.zeros_like(p)
-            for p in params
-        ]
+        trails = _trails_before(opt, params)
         dots = [_dot64([g], [t]) for g, t in zip(_loss_grads(opt, params), trails, strict=True)]
         opt.step()
         want = torch.tensor(dots if per_tensor else [sum(dots)], dtype=torch.float64) / weight
@@ -163,23 +173,13 @@ def test_each_settled_step_learns_from_the_last_update_pass(
 @pytest.mark.parametrize("make", [lambda p: TowerAdam(p, lr=1e-3, lagged=False), lambda p: TowerSGD(p, lr=1e-2)])
 def test_exact_option_learns_from_the_current_gradient(monkeypatch: pytest.MonkeyPatch, make: Any) -> None:
     # Reference: torch.dot in float64 of g~_s and E_{s-1}, handed to step s itself.
-    handed: list[Tensor] = []
-    real = engine.tower_step
-
-    def spy(ts: Any, levels: Any, update_dot: Tensor, *args: Any, **kwargs: Any) -> Tensor:
-        handed.append(update_dot.clone())
-        return real(ts, levels, update_dot, *args, **kwargs)
-
-    monkeypatch.setattr(engine, "tower_step", spy)
+    handed = _record_update_dots(monkeypatch)
     model, x, y = _model_and_data()
     opt = make(model.parameters())  # TowerSGD: exact by default
     params = list(model.parameters())
     for s in range(RETREAT_WINDOW + 5):
         _backward(model, x, y, s)
-        trails = [
-            opt.state[p][TRAIL_KEY].clone() if TRAIL_KEY in opt.state.get(p, {}) else torch.zeros_like(p)
-            for p in params
-        ]
+        trails = _trails_before(opt, params)
         want = _dot64(_loss_grads(opt, params), trails) / (1 - opt.param_groups[0]["horizon"])
         opt.step()
         assert float(handed[-1]) == pytest.approx(want, rel=1e-4, abs=1e-30)
