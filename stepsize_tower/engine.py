@@ -320,6 +320,8 @@ def apply(
     """
     horizon = plan.horizon if plan.levels else 0.0
     lagged, weight = lag.wanted(group, horizon), plan.trail_weight
+    if not lagged:  # turned off (or no trail): a value kept before would be stale if turned on again
+        ts.pop(lag.LAG_KEY, None)
     if not batch.params:  # a rank holding none of a sharded group's parameters (its part of h is 0)
         if lagged:
             _keep_lagged(group, ts, plan, torch.zeros(plan.units, dtype=torch.float64, device=ts["step"].device), skip)

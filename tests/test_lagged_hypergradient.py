@@ -309,3 +309,22 @@ def test_settled_native_steps_take_no_read_pass_of_the_trail(
         opt.step()
     assert calls["trail_dot"] == calls["dot_and_max"] == 0
     assert calls["all_finite" if cls is TowerAdam else "largest"] == 10
+
+
+def test_turning_the_lag_off_and_on_again_starts_from_an_exact_step(monkeypatch: pytest.MonkeyPatch) -> None:
+    # Reference: the exact hypergradient (torch.dot in float64 of g~_s and E_{s-1}): a value kept
+    # before the lag was turned off is not used once it is turned on again.
+    handed = _record_update_dots(monkeypatch)
+    model, x, y = _model_and_data()
+    opt = TowerAdam(model.parameters(), lr=1e-3)
+    params = list(model.parameters())
+    for s in range(RETREAT_WINDOW + 6):
+        opt.param_groups[0]["lagged"] = s < RETREAT_WINDOW + 2 or s >= RETREAT_WINDOW + 4
+        _backward(model, x, y, s)
+        trails = _trails_before(opt, params)
+        want = _dot64(_loss_grads(opt, params), trails) / (1 - opt.param_groups[0]["horizon"])
+        opt.step()
+        if s == RETREAT_WINDOW + 4:  # turned on again: no kept value yet, so this step is exact
+            assert float(handed[-1]) == pytest.approx(want, rel=1e-9, abs=1e-30)
+        if s == RETREAT_WINDOW + 5:  # and the next one lags again
+            assert float(handed[-1]) != pytest.approx(want, rel=1e-3)
