@@ -51,15 +51,10 @@ def wanted(group: dict[str, Any], horizon: float) -> bool:
 def keep(ts: dict[str, Tensor], h: Tensor, weight: float | Tensor, skip: Tensor | None = None) -> None:
     """Keep ``h / weight`` ([units] float64) for the next step; unchanged where ``skip`` holds."""
     value = (h.to(dtype=torch.float64, device=ts["step"].device) / weight).reshape(-1)
-    old = ts.get(LAG_KEY)
-    if skip is None or old is None:
-        value = value if skip is None else torch.where(skip, torch.zeros_like(value), value)
-        if old is None or old.shape != value.shape:
-            ts[LAG_KEY] = value.clone()
-        else:
-            old.copy_(value)
-        return
-    old.copy_(torch.where(skip, old, value))
+    kept = ts.get(LAG_KEY)
+    if kept is None or kept.shape != value.shape:  # the first value (a skipped first one keeps 0)
+        kept = ts[LAG_KEY] = torch.zeros_like(value)
+    kept.copy_(value if skip is None else torch.where(skip, kept, value))
 
 
 def restart(ts: dict[str, Tensor], fires: Tensor | None = None) -> None:

@@ -55,6 +55,29 @@ void for_blocks(const std::vector<Block>& blocks, const F& f) {
   });
 }
 
+// The blocks' partial sums added in block order: the result does not depend on the thread count.
+double in_block_order(const std::vector<double>& partial) {
+  double total = 0.0;
+  for (double x : partial) total += x;
+  return total;
+}
+
+// max(a, b), NaN if either is NaN (std::max would drop a NaN in its first argument).
+template <typename T>
+T nan_max(T a, T b) {
+  return (std::isnan(a) || std::isnan(b)) ? static_cast<T>(NAN) : std::max(a, b);
+}
+
+// The largest lane of a vector of maxima, NaN if any lane is.
+template <typename T>
+T largest_lane(const at::vec::Vectorized<T>& v) {
+  T lanes[at::vec::Vectorized<T>::size()];
+  v.store(lanes);
+  T m = lanes[0];
+  for (int64_t k = 1; k < at::vec::Vectorized<T>::size(); ++k) m = nan_max(m, lanes[k]);
+  return m;
+}
+
 // ----------------------------------------------------------------------------- dot product
 
 #if defined(CPU_CAPABILITY_AVX2)
@@ -119,9 +142,7 @@ double dot_all(const std::vector<at::Tensor>& gs, const std::vector<at::Tensor>&
                                             es[b.tensor].data_ptr<T>() + b.begin, w,
                                             static_cast<T>(l2), b.end - b.begin);
   });
-  double total = 0.0;
-  for (double x : partial) total += x;  // block order: independent of the thread count
-  return total;
+  return in_block_order(partial);
 }
 
 template <typename T>
@@ -184,14 +205,10 @@ double largest_of(const std::vector<at::Tensor>& gs) {
       a3 = at::vec::maximum(a3, V::loadu(g + j + 3 * W).abs());
     }
     for (; j < b.end; j += W) a0 = at::vec::maximum(a0, V::loadu(g + j, std::min<int64_t>(W, b.end - j)).abs());
-    T lanes[V::size()];
-    at::vec::maximum(at::vec::maximum(a0, a1), at::vec::maximum(a2, a3)).store(lanes);
-    T m = lanes[0];
-    for (int64_t i = 1; i < V::size(); ++i) m = (std::isnan(m) || std::isnan(lanes[i])) ? NAN : std::max(m, lanes[i]);
-    partial[k] = m;
+    partial[k] = largest_lane(at::vec::maximum(at::vec::maximum(a0, a1), at::vec::maximum(a2, a3)));
   });
   double out = 0.0;
-  for (T m : partial) out = (std::isnan(out) || std::isnan(m)) ? NAN : std::max(out, static_cast<double>(m));
+  for (T m : partial) out = nan_max(out, static_cast<double>(m));
   return out;
 }
 
@@ -341,9 +358,7 @@ double update_all(std::vector<at::Tensor>& ws, const std::vector<at::Tensor>& gs
     if (j < b.end) update_vec<T, false>(w + j, g + j, m + j, v + j, e + j, b.end - j, k_, accp);
     partial[k] = acc.sum();
   });
-  double total = 0.0;
-  for (double x : partial) total += x;
-  return total;
+  return in_block_order(partial);
 }
 
 // ----------------------------------------------------------------------------- SGD update
@@ -426,9 +441,7 @@ double sgd_all(std::vector<at::Tensor>& ws, const std::vector<at::Tensor>& gs, s
     }
     partial[bk] = acc.sum();
   });
-  double total = 0.0;
-  for (double x : partial) total += x;
-  return total;
+  return in_block_order(partial);
 }
 
 template <typename T>
@@ -460,11 +473,7 @@ std::pair<double, T> block_dot_max(const T* g, const T* e, const T* w, T l2, int
     if (L2) x = x + l2v * (count == W ? V::loadu(w + j) : V::loadu(w + j, count));
     acc.add(x, ev);
   }
-  T lanes[W];
-  mx.store(lanes);
-  T m = lanes[0];
-  for (int64_t k = 1; k < W; ++k) m = (std::isnan(m) || std::isnan(lanes[k])) ? NAN : std::max(m, lanes[k]);
-  return {acc.sum(), m};
+  return {acc.sum(), largest_lane(mx)};
 }
 
 template <typename T, bool MAXIMIZE, bool L2>
@@ -481,7 +490,7 @@ std::pair<double, double> dot_max_all(const std::vector<at::Tensor>& gs, const s
   double total = 0.0, largest = 0.0;
   for (const auto& [dot, m] : partial) {  // block order: independent of the thread count
     total += dot;
-    largest = (std::isnan(largest) || std::isnan(m)) ? NAN : std::max(largest, static_cast<double>(m));
+    largest = nan_max(largest, static_cast<double>(m));
   }
   return {total, largest};
 }
